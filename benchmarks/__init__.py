@@ -1,0 +1,1 @@
+"""The benchmark harness: suites, runner, store, metrics, statistics and CLI."""

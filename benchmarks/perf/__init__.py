@@ -1,0 +1,1 @@
+"""Performance scripts that print ratios against references measured in the same run."""
