@@ -1,0 +1,153 @@
+"""Menu: choose one outcome a step; the best choice depends on the internal state."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+from gymnasium import spaces
+
+from needbench.envs.errors import ConfigError, check_range
+from needbench.envs.physiology import BodyState, Physiology
+from needbench.envs.streams import CopyStreams
+from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+
+#: The pantry of an invented mountain hut. Each item is a lottery over
+#: outcomes: (probability, {need: amount}) in the need's units (band units in
+#: the abstract preset). ``rest`` does nothing.
+HUT_PANTRY: tuple[tuple[str, tuple[tuple[float, Mapping[str, float]], ...]], ...] = (
+    ("rest", ((1.0, {}),)),
+    ("oatcake", ((1.0, {"energy": 0.8}),)),
+    ("meltwater", ((1.0, {"water": 0.8}),)),
+    # Soup from the stove: filling and wet, but the stove sometimes fails.
+    ("stove soup", ((0.7, {"energy": 0.6, "water": 0.6}), (0.3, {}))),
+    # Salted jerky: much energy, costs water.
+    ("jerky", ((1.0, {"energy": 1.2, "water": -0.3}),)),
+)
+
+
+def outcome_tables(items, physiology: Physiology):
+    """Cumulative probabilities (I, O) and effects (I, O, K) of item lotteries.
+
+    Items with fewer outcomes are padded with impossible outcomes (probability 0).
+    """
+    if not items:
+        raise ConfigError("items", items, "at least one (name, outcomes) item")
+    width = max(len(outcomes) for _, outcomes in items)
+    cumulative = np.ones((len(items), width))
+    effects = np.zeros((len(items), width, physiology.num_needs))
+    for i, (name, outcomes) in enumerate(items):
+        probabilities = [p for p, _ in outcomes]
+        for j, p in enumerate(probabilities):
+            check_range(f"items.{name}.outcomes[{j}].probability", p, 0.0, 1.0)
+        if abs(sum(probabilities) - 1.0) > 1e-9:
+            raise ConfigError(f"items.{name}.outcomes", probabilities, "probabilities summing to 1")
+        cumulative[i, :len(outcomes)] = np.cumsum(probabilities)
+        for j, (_, effect) in enumerate(outcomes):
+            effects[i, j] = physiology.vector(dict(effect))
+    return cumulative, effects
+
+
+class MenuWorld(World):
+    """Items are lotteries over outcomes; no space, no time-varying world."""
+
+    parameters = {"items": HUT_PANTRY}
+    default_needs = ("energy", "water")
+
+    def __init__(self, physiology: Physiology, items: Sequence = HUT_PANTRY):
+        super().__init__(physiology)
+        self.items = tuple(items)
+        self.item_names = tuple(name for name, _ in self.items)
+        self.cumulative, self.effects = outcome_tables(self.items, physiology)
+        self.action_space = spaces.Discrete(len(self.items))
+        # The world part of the observation: what the last item delivered, in band units.
+        self.feature_names = tuple(f"last_outcome/{n}" for n in physiology.names)
+        limit = float(np.abs(self.effects).max() / physiology.band.min()) + 1.0
+        self.feature_low = np.full(physiology.num_needs, -limit)
+        self.feature_high = np.full(physiology.num_needs, limit)
+
+    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
+        return {"last_outcome": np.zeros((batch, self.physiology.num_needs))}
+
+    def draw(self, actions: np.ndarray, rng: CopyStreams) -> tuple[np.ndarray, np.ndarray]:
+        """Outcome index (B,) and intake (B, K) of each copy's chosen item."""
+        u = rng.random((actions.shape[0], 1))
+        outcome = np.sum(u >= self.cumulative[actions], axis=1)
+        outcome = np.minimum(outcome, self.cumulative.shape[1] - 1)
+        return outcome, self.effects[actions, outcome]
+
+    def step(self, state, actions, body: BodyState, rng: CopyStreams):
+        outcome, intake = self.draw(actions, rng)
+        batch = actions.shape[0]
+        effects = Effects(intake=intake, activity=np.zeros(batch), task_reward=np.zeros(batch),
+                          events={"item": actions.copy(), "outcome": outcome})
+        return {"last_outcome": intake / self.physiology.band}, effects
+
+    def observe(self, state):
+        return state["last_outcome"]
+
+    def text(self, state, index):
+        effect = ", ".join(f"{n} {v:+.2f}" for n, v in
+                           zip(self.physiology.names, state["last_outcome"][index], strict=True))
+        return f"last outcome (band units): {effect}"
+
+    def model(self) -> dict[str, Any]:
+        """The known outcome model, for planners and controllers: names, cumulative
+        probabilities (I, O) and effects (I, O, K) in need units."""
+        probabilities = np.diff(self.cumulative, axis=1, prepend=0.0)
+        return {"items": self.item_names, "probabilities": probabilities,
+                "effects": self.effects}
+
+
+class MenuEnv(NeedEnv):
+    """Menu: pick one item a step; each item changes the needs (some by chance).
+
+    ## Description
+    A body with energy and water (by default) sits in an invented mountain hut
+    with a small pantry. Each step the agent takes one item: rest, an oatcake,
+    meltwater, stove soup (which fails three times in ten) or salted jerky
+    (energy at a cost in water). Both needs drain every step; food reaches the
+    body through the gut with first-order delay. The best item depends on the
+    internal state: need-dependent valuation.
+
+    ## Action Space
+    ``Discrete(len(items))``: the index of the item taken (0 = rest).
+
+    ## Observation Space
+    ``Box(float32)``: the K internal deviations (h - h*)/band, then the K
+    amounts the last item delivered, in band units. With
+    ``interoception=False`` only the latter.
+
+    ## Rewards
+    By default drive reduction r_t = D(h_t) - D(h_{t+1}) with the homeostatic
+    drive (n = 3, m = 2) on band-scaled deviations. See ``reward``.
+
+    ## Starting State
+    Levels uniform within half a band of the set points; gut empty.
+
+    ## Episode End
+    Termination when a need leaves its lethal bounds (+-6 bands); truncation at
+    ``max_steps`` (200).
+
+    ## Arguments
+    ``items``: a sequence of ``(name, ((probability, {need: amount}), ...))``;
+    and the common task arguments (``needbench.envs.task``).
+
+    ## Vectorized environment
+    ``gymnasium.make_vec("needbench/Menu-v0", num_envs=N,
+    vectorization_mode="vector_entry_point")`` gives :class:`MenuVectorEnv`.
+
+    ## Version History
+    * v0: initial version.
+    """
+
+    world_cls = MenuWorld
+    defaults = {"max_steps": 200}
+
+
+class MenuVectorEnv(NeedVectorEnv):
+    """Native vector version of :class:`MenuEnv` (same core, B = num_envs)."""
+
+    world_cls = MenuWorld
+    defaults = MenuEnv.defaults
