@@ -21,6 +21,12 @@ from needbench.envs.rewards import RewardChannel
 #: The env's own ``max_steps`` gives the time limit, so no TimeLimit wrapper is added.
 TASKS: tuple[tuple[str, str, str, dict], ...] = (
     ("needbench/Menu-v0", "menu", "Menu", {}),
+    ("needbench/Arena-v0", "arena", "Arena", {}),
+    ("needbench/Forewarn-v0", "forewarn", "Forewarn", {}),
+    ("needbench/Drift-v0", "drift", "Drift", {}),
+    ("needbench/Gamble-v0", "gamble", "Gamble", {}),
+    ("needbench/Lure-v0", "lure", "Lure", {}),
+    ("needbench/Shift-v0", "shift", "Shift", {}),
 )
 
 

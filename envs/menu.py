@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -107,9 +108,10 @@ class MenuEnv(NeedEnv):
     A body with energy and water (by default) sits in an invented mountain hut
     with a small pantry. Each step the agent takes one item: rest, an oatcake,
     meltwater, stove soup (which fails three times in ten) or salted jerky
-    (energy at a cost in water). Both needs drain every step; food reaches the
-    body through the gut with first-order delay. The best item depends on the
-    internal state: need-dependent valuation.
+    (energy at a cost in water). Both needs drain every step; items act at
+    once (no gut delay), so the internal state is the whole state and the task
+    has an exact finite model on a lattice (``core.finite_model()``). The best
+    item depends on the internal state: need-dependent valuation.
 
     ## Action Space
     ``Discrete(len(items))``: the index of the item taken (0 = rest).
@@ -143,7 +145,9 @@ class MenuEnv(NeedEnv):
     """
 
     world_cls = MenuWorld
-    defaults = {"max_steps": 200}
+    # Items act at once, so the internal state is the whole state of the task and
+    # the exact planner can solve it on a lattice (needbench.envs.lattice).
+    defaults = {"max_steps": 200, "need_overrides": {"energy": {"uptake_rate": math.inf}}}
 
 
 class MenuVectorEnv(NeedVectorEnv):

@@ -303,6 +303,15 @@ class TaskCore:
         info.update(effects.events)
         return reward.astype(np.float64), terminated, truncated, info
 
+    def finite_model(self, resolution: float = 0.25):
+        """The task as a finite MDP on a lattice of internal states (outcome tasks only).
+
+        See :mod:`needbench.envs.lattice`; used by the exact planner.
+        """
+        from needbench.envs.lattice import lattice_model
+
+        return lattice_model(self, resolution)
+
     def validate_actions(self, actions: Any, space: spaces.Space) -> np.ndarray:
         """Check a batch of actions against the batched action space."""
         if isinstance(space, spaces.Box):

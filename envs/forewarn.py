@@ -1,0 +1,216 @@
+"""Forewarn: a horn sounds a fixed delay before a cold squall; prepare in time or suffer it."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from gymnasium import spaces
+
+from needbench.envs.errors import ConfigError, check_finite, check_non_negative, check_range
+from needbench.envs.physiology import BodyState, Physiology
+from needbench.envs.streams import CopyStreams
+from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+
+#: What the actions do, in order (the index is the action).
+ACTIONS = ("rest", "eat", "drink", "put on oilskin", "take off oilskin")
+REST, EAT, DRINK, PUT_ON, TAKE_OFF = range(len(ACTIONS))
+
+#: ``since_cue`` of a copy with no warning or squall under way.
+IDLE = -1
+
+
+def _whole_number(path: str, value: Any, low: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
+        raise ConfigError(path, value, f"a whole number >= {low}")
+    return int(value)
+
+
+class ForewarnWorld(World):
+    """Random warnings, each followed after exactly ``warning_delay`` steps by a squall.
+
+    State: ``since_cue`` (B,) steps since the current warning sounded
+    (:data:`IDLE` when none is under way) and ``coat`` (B,) whether the
+    oilskin is worn. On the step a warning sounds ``since_cue`` is 0; the
+    squall blows while ``warning_delay <= since_cue < warning_delay +
+    squall_length``; a new warning can sound only when the last squall is over.
+    """
+
+    parameters = {
+        "warning_delay": 10,
+        "squall_length": 20,
+        "warning_probability": 0.03,
+        "chill": 6.0,
+        "disturbed_need": "temperature",
+        "shield": 1.0,
+        "coat_cost": 0.02,
+        "meal": 0.5,
+        "drink": 0.5,
+        "clock": True,
+    }
+
+    def __init__(self, physiology: Physiology, warning_delay: int = 10, squall_length: int = 20,
+                 warning_probability: float = 0.03, chill: float = 6.0,
+                 disturbed_need: str = "temperature", shield: float = 1.0,
+                 coat_cost: float = 0.02, meal: float = 0.5, drink: float = 0.5,
+                 clock: bool = True):
+        super().__init__(physiology)
+        self.warning_delay = _whole_number("warning_delay", warning_delay, 1)
+        self.squall_length = _whole_number("squall_length", squall_length, 1)
+        self.warning_probability = check_range("warning_probability", warning_probability,
+                                               0.0, 1.0)
+        self.chill = check_finite("chill", chill)
+        if disturbed_need not in physiology.index:
+            raise ConfigError("disturbed_need", disturbed_need,
+                              "a need of this body: " + ", ".join(physiology.names))
+        if physiology.ambient_rate[physiology.index[disturbed_need]] <= 0:
+            raise ConfigError("disturbed_need", disturbed_need,
+                              "a need that relaxes toward ambient (ambient_rate > 0)")
+        self.disturbed_need = disturbed_need
+        self.shield = check_range("shield", shield, 0.0, 1.0)
+        self.coat_cost = check_non_negative("coat_cost", coat_cost)
+        self.meal = check_non_negative("meal", meal)
+        self.drink = check_non_negative("drink", drink)
+        if not isinstance(clock, (bool, np.bool_)):
+            raise ConfigError("clock", clock, "True or False")
+        self.clock = bool(clock)
+        self.event_length = self.warning_delay + self.squall_length
+        band = physiology.band
+        # (K,) per-step vectors in need units; a body without energy or water
+        # simply gains nothing from eating or drinking.
+        self.chill_vector = np.zeros(physiology.num_needs)
+        self.chill_vector[physiology.index[disturbed_need]] = self.chill
+        self.chill_vector *= band
+        self.meal_vector = self._on("energy", self.meal) * band
+        self.drink_vector = self._on("water", self.drink) * band
+        self.coat_cost_vector = self._on("energy", self.coat_cost) * band
+        self.action_space = spaces.Discrete(len(ACTIONS))
+        names = ["cue"] + (["time_since_cue"] if self.clock else []) + ["coat"]
+        self.feature_names = tuple(names)
+        self.feature_low = np.zeros(len(names))
+        self.feature_high = np.ones(len(names))
+
+    def _on(self, need: str, value: float) -> np.ndarray:
+        out = np.zeros(self.physiology.num_needs)
+        if need in self.physiology.index:
+            out[self.physiology.index[need]] = value
+        return out
+
+    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
+        return {"since_cue": np.full(batch, IDLE, np.int64), "coat": np.zeros(batch, bool)}
+
+    def step(self, state, actions, body: BodyState, rng: CopyStreams):
+        coat = np.where(actions == PUT_ON, True, np.where(actions == TAKE_OFF, False,
+                                                           state["coat"]))
+        since = state["since_cue"]
+        since = np.where(since >= 0, since + 1, since)
+        since = np.where(since >= self.event_length, IDLE, since)
+        # One draw per copy per step, used only by idle copies.
+        cue = (since == IDLE) & (rng.random((actions.shape[0],)) < self.warning_probability)
+        since = np.where(cue, 0, since)
+        squall = (since >= self.warning_delay) & (since < self.event_length)
+        exposure = squall * (1.0 - self.shield * coat)
+        ambient = self.physiology.ambient - exposure[:, None] * self.chill_vector
+        intake = ((actions == EAT)[:, None] * self.meal_vector
+                  + (actions == DRINK)[:, None] * self.drink_vector)
+        forcing = -(coat[:, None] * self.coat_cost_vector)
+        batch = actions.shape[0]
+        effects = Effects(intake=intake, activity=np.zeros(batch), task_reward=np.zeros(batch),
+                          ambient=ambient, forcing=forcing,
+                          events={"cue": cue, "disturbance": squall, "prepared": coat.copy()})
+        return {"since_cue": since, "coat": coat}, effects
+
+    def observe(self, state):
+        since = state["since_cue"]
+        parts = [(since == 0).astype(np.float64)]
+        if self.clock:
+            # Fraction of the warning-plus-squall span gone by; 1 when none is under way.
+            parts.append(np.where(since >= 0, since / self.event_length, 1.0))
+        parts.append(state["coat"].astype(np.float64))
+        return np.stack(parts, axis=1)
+
+    def text(self, state, index):
+        since = int(state["since_cue"][index])
+        if since == IDLE:
+            weather = "calm"
+        elif since < self.warning_delay:
+            weather = (f"horn sounded {since} steps ago; squall in "
+                       f"{self.warning_delay - since} steps")
+        else:
+            weather = f"squall blowing, {self.event_length - since} steps left"
+        coat = "worn" if state["coat"][index] else "off"
+        return f"weather: {weather}\noilskin: {coat}"
+
+
+class ForewarnEnv(NeedEnv):
+    """Forewarn: a horn warns of a cold squall a fixed delay ahead; prepare or suffer it.
+
+    ## Description
+    A shepherd in an invented moorland bothy keeps energy, water and core
+    temperature in their bands. Now and then a lookout's horn sounds (the
+    cue); exactly ``warning_delay`` steps (10) later a cold squall blows for
+    ``squall_length`` steps (20), lowering the ambient temperature by
+    ``chill`` bands (6). An oilskin keeps the squall out (``shield`` = 1: all
+    of it), but it is heavy: while worn it costs ``coat_cost`` bands of energy
+    per step (0.02, as much as basal drain). Put on when the horn sounds, the
+    oilskin spares the body the squall; put on only once the body feels cold,
+    it stops the fall, but the temperature climbs back slowly (thermal
+    inertia). The task probes anticipation: acting on a predictive cue before
+    the deviation appears.
+
+    ## Action Space
+    ``Discrete(5)``: 0 rest, 1 eat (``meal`` bands of energy, 0.5, through the
+    gut), 2 drink (``drink`` bands of water, 0.5), 3 put on the oilskin,
+    4 take it off. The oilskin stays as it is until changed.
+
+    ## Observation Space
+    ``Box(float32)``: the K internal deviations (h - h*)/band; ``cue`` (1 on
+    the step the horn sounds, else 0); with ``clock`` (default) the time since
+    the horn as a fraction of ``warning_delay + squall_length`` (1 when no
+    warning or squall is under way); ``coat`` (1 while worn). With
+    ``clock=False`` the agent must remember when the horn sounded.
+
+    ## Rewards
+    By default drive reduction r_t = D(h_t) - D(h_{t+1}) with the homeostatic
+    drive (n = 3, m = 2) on band-scaled deviations. See ``reward``.
+
+    ## Starting State
+    Levels uniform within half a band of the set points; gut empty; calm
+    weather; oilskin off.
+
+    ## Episode End
+    Termination when a need leaves its lethal bounds (+-6 bands); truncation
+    at ``max_steps`` (400).
+
+    ## Arguments
+    * ``warning_delay`` (10), ``squall_length`` (20): steps, whole numbers >= 1.
+    * ``warning_probability``: chance per calm step that the horn sounds (0.03).
+    * ``chill``: bands by which the squall lowers the ambient of
+      ``disturbed_need`` (default ``temperature``; it must relax toward
+      ambient). Negative values make a heat wave.
+    * ``shield``: fraction of the chill the oilskin keeps out, in [0, 1].
+    * ``coat_cost``, ``meal``, ``drink``: bands per step / per action, >= 0.
+    * ``clock``: include the time since the horn in the observation.
+    * the common task arguments (``needbench.envs.task``).
+
+    Every step's ``info`` carries ``cue`` (the horn sounded this step),
+    ``disturbance`` (the squall blew this step) and ``prepared`` (the oilskin
+    was worn this step), all bool.
+
+    ## Vectorized environment
+    ``gymnasium.make_vec("needbench/Forewarn-v0", num_envs=N,
+    vectorization_mode="vector_entry_point")`` gives :class:`ForewarnVectorEnv`.
+
+    ## Version History
+    * v0: initial version.
+    """
+
+    world_cls = ForewarnWorld
+    defaults = {"max_steps": 400}
+
+
+class ForewarnVectorEnv(NeedVectorEnv):
+    """Native vector version of :class:`ForewarnEnv` (same core, B = num_envs)."""
+
+    world_cls = ForewarnWorld
+    defaults = ForewarnEnv.defaults

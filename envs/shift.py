@@ -1,0 +1,186 @@
+"""Shift: paid work in the sun against tending the body; stability versus return."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from gymnasium import spaces
+
+from needbench.envs.errors import ConfigError, check_finite, check_non_negative
+from needbench.envs.physiology import BodyState, Physiology
+from needbench.envs.streams import CopyStreams
+from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+
+#: Actions of the invented salt-pan harvest, in action-index order.
+WORK, EAT, DRINK, SHADE = 0, 1, 2, 3
+ACTION_NAMES = ("rake salt", "eat flatbread", "drink at the cistern", "rest under the awning")
+
+
+class ShiftWorld(World):
+    """A salt pan in the sun (paid work), a hut with bread and water, and shade.
+
+    Working pays ``pay`` task reward per step, costs ``work_activity`` units of
+    activity (energy and water drain faster, the body makes heat) and is done
+    in the sun, whose ambient temperature follows a day cycle,
+    ``sun_heat * sun(t)`` with ``sun(t) = sin^2(pi t / day_length)`` (0 at dawn
+    and dusk, 1 at noon). Every other action pays nothing and is taken in the
+    shade (ambient ``shade_ambient``). Needs the body lacks are skipped (no
+    temperature: no heat load).
+    """
+
+    parameters = {"pay": 1.0, "work_activity": 1.0, "meal": 0.8, "drink": 0.8,
+                  "sun_heat": 1.5, "shade_ambient": -0.5, "day_length": 100}
+    default_needs = ("energy", "water", "temperature")
+
+    def __init__(self, physiology: Physiology, pay: float = 1.0, work_activity: float = 1.0,
+                 meal: float = 0.8, drink: float = 0.8, sun_heat: float = 1.5,
+                 shade_ambient: float = -0.5, day_length: int = 100):
+        super().__init__(physiology)
+        self.pay = check_non_negative("pay", pay)
+        self.work_activity = check_non_negative("work_activity", work_activity)
+        self.meal = check_non_negative("meal", meal)
+        self.drink = check_non_negative("drink", drink)
+        self.sun_heat = check_finite("sun_heat", sun_heat)
+        self.shade_ambient = check_finite("shade_ambient", shade_ambient)
+        if (not isinstance(day_length, (int, np.integer)) or isinstance(day_length, bool)
+                or day_length < 2):
+            raise ConfigError("day_length", day_length, "a whole number of steps >= 2")
+        self.day_length = int(day_length)
+        names = physiology.names
+        intake = np.zeros((len(ACTION_NAMES), physiology.num_needs))
+        if "energy" in names:
+            intake[EAT] = physiology.vector({"energy": self.meal})
+        if "water" in names:
+            intake[DRINK] = physiology.vector({"water": self.drink})
+        self.intake = intake
+        self.activity = np.array([self.work_activity, 0.0, 0.0, 0.0])
+        self.task_reward = np.array([self.pay, 0.0, 0.0, 0.0])
+        self.temperature = physiology.index.get("temperature")
+        self.action_space = spaces.Discrete(len(ACTION_NAMES))
+        self.feature_names = ("sun", "time_of_day")
+        self.feature_low = np.zeros(2)
+        self.feature_high = np.ones(2)
+
+    def sun(self, clock: np.ndarray) -> np.ndarray:
+        """Sun strength in [0, 1] at step ``clock`` of the day cycle."""
+        return np.sin(np.pi * (clock % self.day_length) / self.day_length) ** 2
+
+    def ambient(self, clock: np.ndarray, actions: np.ndarray) -> np.ndarray | None:
+        """(B, K) ambient values of a step: the sun's heat at the pan, shade elsewhere."""
+        if self.temperature is None:
+            return None
+        ambient = np.broadcast_to(self.physiology.ambient,
+                                  (actions.shape[0], self.physiology.num_needs)).copy()
+        ambient[:, self.temperature] = np.where(actions == WORK, self.sun_heat * self.sun(clock),
+                                                self.shade_ambient)
+        return ambient
+
+    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
+        return {"clock": np.zeros(batch, dtype=np.int64)}
+
+    def step(self, state, actions, body: BodyState, rng: CopyStreams):
+        clock = state["clock"]
+        effects = Effects(
+            intake=self.intake[actions], activity=self.activity[actions],
+            task_reward=self.task_reward[actions], ambient=self.ambient(clock, actions),
+            events={"action": actions.copy(), "worked": actions == WORK, "sun": self.sun(clock)})
+        return {"clock": clock + 1}, effects
+
+    def observe(self, state):
+        clock = state["clock"]
+        return np.stack([self.sun(clock), (clock % self.day_length) / self.day_length], axis=1)
+
+    def text(self, state, index):
+        clock = int(state["clock"][index])
+        return (f"salt pan, step {clock % self.day_length} of a {self.day_length}-step day, "
+                f"sun {float(self.sun(np.array(clock))):.2f}")
+
+    def model(self) -> dict[str, Any]:
+        """The known action model, for planners and controllers.
+
+        ``actions`` names; ``intake`` (A, K) in need units; ``activity`` (A,);
+        ``task_reward`` (A,); ``in_sun`` (A,) bool. The ambient of a step is
+        :meth:`ambient` (clock, actions), the clock being the step of the day.
+        """
+        return {"actions": ACTION_NAMES, "intake": self.intake, "activity": self.activity,
+                "task_reward": self.task_reward, "in_sun": np.arange(len(ACTION_NAMES)) == WORK}
+
+
+class ShiftEnv(NeedEnv):
+    """Shift: rake salt in the sun for pay, or tend the body for nothing.
+
+    ## Description
+    A worker at an invented salt pan chooses each step between raking salt in
+    the sun (+1 task reward, activity 1: energy and water drain faster and
+    the body makes heat, while the sun heats it toward ``sun_heat * sun(t)``
+    band, peaking at noon of the 100-step day), eating flatbread (+0.8 band of
+    energy, through the gut), drinking at the cistern (+0.8 band of water) and
+    resting under the awning (shade, ambient -0.5 band). Tending the body
+    pays nothing outside, so the task probes the trade-off between stability
+    and extrinsic return.
+
+    Measured over 32 seeds with the registered weights: always raking earns
+    100 task reward, survives the shift (lowest water seen -5.5 bands, lethal
+    at -6) but spends only 19 % of the steps in the comfort band, return
+    86.5; a rule that tends the most urgent need once it is half a band out
+    and rakes otherwise earns 66.4, stays in band 100 % of the time, return
+    66.4. Because drive reduction telescopes (its episode sum is
+    D(h_0) - D(h_T)), the ranking of the two rules flips at task_weight of
+    about 0.40: below it the tending rule has the higher return.
+
+    ## Action Space
+    ``Discrete(4)``: 0 rake salt (work), 1 eat flatbread, 2 drink at the
+    cistern, 3 rest under the awning.
+
+    ## Observation Space
+    ``Box(float32, (K + 2,))``: the K internal deviations (h - h*)/band, then
+    the sun's strength in [0, 1] and the time of day in [0, 1). With
+    ``interoception=False`` only the latter two. K = 3 (energy, water,
+    temperature) by default.
+
+    ## Rewards
+    r_t = task_weight * task_t + drive_weight * (D(h_t) - D(h_{t+1})), with
+    task_t = ``pay`` (1) on a work step and 0 otherwise, and the homeostatic
+    drive (n = 3, m = 2) on band-scaled deviations. Registered weights:
+    task_weight = drive_weight = 1. Why: one step's pay then equals the drive
+    reduction of one meal eaten 1.11 bands below the set point (other needs
+    at their set points), so a reward-greedy worker lets a need drift just
+    past the edge of its comfort band before tending it is worth a step of
+    work: the two goals meet at the band edge rather than one swamping the
+    other, and the return-maximising simple rule is the unstable one.
+
+    ## Starting State
+    Levels uniform within half a band of the set points, gut empty, dawn
+    (sun 0).
+
+    ## Episode End
+    Termination when a need leaves its lethal bounds (+-6 bands); truncation
+    at ``max_steps`` (100, one day).
+
+    ## Arguments
+    ``pay`` (>= 0, 1.0): task reward per work step; ``work_activity`` (>= 0,
+    1.0): activity while working; ``meal`` and ``drink`` (>= 0, 0.8): amounts
+    in need units; ``sun_heat`` (1.5) and ``shade_ambient`` (-0.5): ambient
+    temperature at the pan at noon and in the shade; ``day_length`` (whole
+    number >= 2, 100 steps); and the common task arguments
+    (``needbench.envs.task``). ``info`` adds ``action``, ``worked`` and
+    ``sun`` (the sun's strength during the step).
+
+    ## Vectorized environment
+    ``gymnasium.make_vec("needbench/Shift-v0", num_envs=N,
+    vectorization_mode="vector_entry_point")`` gives :class:`ShiftVectorEnv`.
+
+    ## Version History
+    * v0: initial version.
+    """
+
+    world_cls = ShiftWorld
+    defaults = {"max_steps": 100, "task_weight": 1.0, "drive_weight": 1.0}
+
+
+class ShiftVectorEnv(NeedVectorEnv):
+    """Native vector version of :class:`ShiftEnv` (same core, B = num_envs)."""
+
+    world_cls = ShiftWorld
+    defaults = ShiftEnv.defaults
