@@ -21,6 +21,8 @@ from needbench.envs.rewards import RewardChannel
 #: The env's own ``max_steps`` gives the time limit, so no TimeLimit wrapper is added.
 TASKS: tuple[tuple[str, str, str, dict], ...] = (
     ("needbench/Menu-v0", "menu", "Menu", {}),
+    ("needbench/Forage-v0", "forage", "Forage", {}),
+    ("needbench/ForageWide-v0", "forage", "ForageWide", {}),
     ("needbench/Arena-v0", "arena", "Arena", {}),
     ("needbench/Forewarn-v0", "forewarn", "Forewarn", {}),
     ("needbench/Drift-v0", "drift", "Drift", {}),

@@ -33,7 +33,8 @@ class Preset:
 
     def physiology(self, needs: Iterable[str] | None = None,
                    overrides: Mapping[str, Mapping[str, float]] | None = None,
-                   dt: float | None = None, extra: Iterable[Need] = ()) -> Physiology:
+                   dt: float | None = None, extra: Iterable[Need] = (),
+                   couplings: Iterable[Coupling] | None = None) -> Physiology:
         """A body with some of this preset's needs (default: all), optionally changed.
 
         Args:
@@ -41,6 +42,7 @@ class Preset:
             overrides: {need name: {field: value}} changes to apply.
             dt: step length (default the preset's).
             extra: further needs declared by the user (salt, sleep pressure...).
+            couplings: couplings to use instead of the preset's (``()``: none).
         """
         names = list(self.needs) if needs is None else list(needs)
         for name in names:
@@ -57,8 +59,10 @@ class Preset:
                 raise ConfigError(f"overrides.{name}", sorted(unknown),
                                   "fields of Need: " + ", ".join(Need.__dataclass_fields__))
             chosen[name] = chosen[name].with_(**changes)
-        kept = tuple(c for c in self.couplings if c.source in chosen and c.target in chosen)
-        return Physiology(tuple(chosen.values()), kept, self.dt if dt is None else dt)
+        if couplings is None:
+            couplings = tuple(c for c in self.couplings
+                              if c.source in chosen and c.target in chosen)
+        return Physiology(tuple(chosen.values()), tuple(couplings), self.dt if dt is None else dt)
 
 
 def abstract() -> Preset:
@@ -150,6 +154,12 @@ def mammal(body_mass_kg: float = 70.0) -> Preset:
                  "shivering: mmol/L per hour per degree C below the set point"),
         Coupling("temperature", "temperature", -0.3, "below",
                  "shivering heat: degrees C per hour per degree C below the set point"),
+        # Without evaporative cooling, work heat (1.8 C/h at activity 1) against the
+        # Newton rate 0.1/h would push the core far above lethal. With this gain the
+        # core settles about 0.9 C above the set point at activity 1 (modelling
+        # choice; exercise raises core temperature by about 1 C, from memory).
+        Coupling("temperature", "temperature", 2.0, "above",
+                 "sweating cools: degrees C per hour per degree C above the set point"),
     )
     return Preset("mammal", needs, couplings, dt=0.25, time_unit="hour")
 

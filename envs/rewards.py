@@ -79,6 +79,7 @@ class RewardChannel:
         alive: np.ndarray | None = None,
         task: np.ndarray | None = None,
         perceived: np.ndarray | None = None,
+        drive_before: np.ndarray | None = None,
     ) -> RewardParts:
         """One step's reward for B bodies.
 
@@ -91,8 +92,10 @@ class RewardChannel:
             perceived: (B, K) outcome as the agent perceives it, for
                 sensory_estimate; overrides ``intake + bias`` when a task
                 decides per item what is misperceived.
+            drive_before: D(h_t) when the caller already has it (the task
+                engine keeps the drive of its current body).
         """
-        d_before = drive(before.level, before.set_point)
+        d_before = drive(before.level, before.set_point) if drive_before is None else drive_before
         d_after = drive(after.level, after.set_point)
         if self.kind == "drive_reduction":
             internal = d_before - d_after

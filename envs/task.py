@@ -15,6 +15,7 @@ Common constructor arguments (every task accepts them; a family adds its own):
 * ``needs``: names of the needs the body has (a family's default otherwise).
 * ``need_overrides``: ``{need: {field: value}}`` changes to the preset's needs.
 * ``extra_needs``: further :class:`~needbench.envs.needs.Need` objects.
+* ``couplings``: cross-need couplings; None keeps the preset's, ``()`` has none.
 * ``drive``: drive family (``homeostatic``, ``quadratic``, ``asymmetric``) and
   ``drive_params``: its parameters. Deviations are scaled by the comfort bands.
 * ``reward``: reward channel kind; ``drive_weight``, ``task_weight``,
@@ -128,6 +129,7 @@ class TaskConfig:
     needs: tuple[str, ...] | None = None
     need_overrides: Mapping[str, Mapping[str, float]] = field(default_factory=dict)
     extra_needs: tuple = ()
+    couplings: tuple | None = None
     drive: str = "homeostatic"
     drive_params: Mapping[str, Any] = field(default_factory=dict)
     reward: str = "drive_reduction"
@@ -182,7 +184,8 @@ class TaskCore:
             raise ConfigError("max_steps", config.max_steps, "a whole number >= 1")
         needs = config.needs if config.needs is not None else world_cls.default_needs
         body = load_preset(config.preset)
-        self.physiology = body.physiology(needs, config.need_overrides, extra=config.extra_needs)
+        self.physiology = body.physiology(needs, config.need_overrides, extra=config.extra_needs,
+                                          couplings=config.couplings)
         self.config = config
         self.band = self.physiology.band
         self.need_names = self.physiology.names
@@ -200,6 +203,8 @@ class TaskCore:
             self.physiology.lethal_high - self.physiology.set_point) / self.band)) * 2.0
         self.streams = CopyStreams(np.zeros(batch, dtype=np.uint64))
         self.body: BodyState | None = None
+        self._drive_of: tuple[BodyState | None, np.ndarray | None] = (None, None)
+        self._drive_stale = True
         self.state: dict[str, np.ndarray] = {}
         self.t = np.zeros(batch, dtype=np.int64)
 
@@ -241,6 +246,7 @@ class TaskCore:
         self.streams.merge(mask, sub)
         for old, new in zip(self.body, fresh_body, strict=True):
             old[mask] = new
+        self._drive_stale = True
         for key, value in fresh_world.items():
             self.state[key][mask] = value
         self.t[mask] = 0
@@ -259,6 +265,19 @@ class TaskCore:
             return world
         return np.concatenate([internal, world], axis=1)
 
+    def current_drive(self) -> np.ndarray:
+        """(B,) D(h) of the current bodies, computed once per step and cached.
+
+        The cache is tied to the body object, so a body set from outside (or
+        changed in place by a reset) is scored afresh.
+        """
+        body, drive = self._drive_of
+        if body is not self.body or self._drive_stale:
+            drive = self.drive(self.body.level, self.body.set_point)
+            self._drive_of = (self.body, drive)
+            self._drive_stale = False
+        return drive
+
     def body_info(self) -> dict[str, np.ndarray]:
         """The internal-state part of ``info``, batched."""
         body = self.body
@@ -266,7 +285,7 @@ class TaskCore:
             "level": body.level.copy(),
             "set_point": body.set_point.copy(),
             "deviation": self.physiology.deviation(body),
-            "drive": self.drive(body.level, body.set_point),
+            "drive": self.current_drive().copy(),
             "in_band": self.physiology.in_band(body),
         }
 
@@ -286,15 +305,16 @@ class TaskCore:
             after = BodyState(level, after.gut, after.set_point)
         parts = self.reward_channel.compute(
             self.drive, before, after, intake=effects.intake, alive=alive,
-            task=effects.task_reward, perceived=effects.perceived)
+            task=effects.task_reward, perceived=effects.perceived,
+            drive_before=self.current_drive())
         reward = parts.total - self.config.lethal_penalty * (~alive)
         self.body = after
+        self._drive_of = (after, parts.drive_after)
         self.t += 1
         terminated = ~alive if self.config.on_lethal == "terminate" else np.zeros_like(alive)
         truncated = (self.t >= self.max_steps) & ~terminated
         info = self.body_info()
         info.update(
-            drive=parts.drive_after,
             reward_internal=parts.internal,
             reward_task=parts.task,
             alive=alive,

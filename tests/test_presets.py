@@ -95,3 +95,16 @@ def test_preset_errors():
         abstract().physiology(["energy", "sleep"])
     with pytest.raises(ConfigError, match="overrides.energy"):
         abstract().physiology(overrides={"energy": {"colour": 1}})
+
+
+def test_working_body_settles_near_a_degree_above_the_set_point():
+    # Analytic steady state of dT/dt = -k (T - T_n) + q + a c - s (T - 37) with
+    # q = k (37 - T_n): T - 37 = a c / (k + s); the modelling choice documented in
+    # the preset (exercise raises core temperature by about 1 C, from memory).
+    body = mammal().physiology(["temperature"])
+    state = body.initial(np.random.default_rng(0), 1)._replace(level=np.array([[37.0]]))
+    for _ in range(400):
+        state = body.transition(state, activity=np.array([1.0]))
+    heat = -body.activity_cost[0]
+    assert state.level[0, 0] - 37.0 == pytest.approx(heat / (0.1 + 2.0), abs=1e-6)
+    assert 0.5 < state.level[0, 0] - 37.0 < 1.5
