@@ -1,0 +1,341 @@
+"""The protocol every needbench agent follows, and the agent file format.
+
+An agent is built from one copy's observation and action spaces plus keyword
+hyperparameters, learns with ``learn(env, total_steps, seed, logger)``, acts on
+a batch of observations with ``act``, and is written to and read from disk with
+``save`` and ``load``.
+
+Agent file format (version 1)
+-----------------------------
+One compressed ``.npz`` archive (``numpy.savez_compressed``) holding no
+pickled objects, so ``numpy.load(path, allow_pickle=False)`` reads it:
+
+* ``header``: a 0-d unicode array holding one JSON object::
+
+      {"format": "needbench-agent", "format_version": 1,
+       "agent": "<registry name>",
+       "hyperparameters": {...},            # the agent's hyperparameter dataclass
+       "observation_space": {...}, "action_space": {...},   # see encode_space
+       "state": {...}}                      # small JSON-able learned state
+* ``space/observation/<field>`` and ``space/action/<field>``: bounds and sizes
+  of the two spaces (Box ``low``/``high``, MultiDiscrete ``nvec``/``start``);
+* ``state/<name>``: the learned arrays (Q-tables, values, policies...).
+
+``Agent.load`` rebuilds the agent from the header with the same constructor a
+user calls, then puts the learned state back, so a loaded agent acts exactly as
+the saved one did.
+
+Seeding convention
+------------------
+A learning run with seed ``s`` over C env copies gives copy ``j`` the reset
+seed and the exploration-stream key of :func:`copy_seeds` ``(s, C)[j]``. Copy j
+of seed s therefore sees the same world whether it learns alone or beside
+other seeds in one wide vector env.
+"""
+
+from __future__ import annotations
+
+import abc
+import dataclasses
+import difflib
+import json
+import os
+import tempfile
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any, ClassVar, Protocol, runtime_checkable
+
+import gymnasium as gym
+import numpy as np
+from gymnasium import spaces
+from gymnasium.vector import AutoresetMode, SyncVectorEnv, VectorEnv
+
+from needbench.envs.errors import ConfigError
+
+FILE_FORMAT = "needbench-agent"
+FILE_FORMAT_VERSION = 1
+
+
+@runtime_checkable
+class Logger(Protocol):
+    """Receives scalar curves during learning (TensorBoard writers fit this)."""
+
+    def log_scalar(self, tag: str, value: float, step: int) -> None: ...
+
+
+class NullLogger:
+    """A logger that drops everything (the default when none is given)."""
+
+    def log_scalar(self, tag: str, value: float, step: int) -> None:
+        return None
+
+
+# --- hyperparameters -----------------------------------------------------------
+
+
+def build_hyperparameters(schema: type, given: Mapping[str, Any], agent_name: str):
+    """An instance of the agent's hyperparameter dataclass from keyword values.
+
+    Unknown names raise ConfigError with the nearest known name; the dataclass's
+    own ``__post_init__`` checks the values.
+    """
+    known = [f.name for f in dataclasses.fields(schema)]
+    for key, value in given.items():
+        if key not in known:
+            near = difflib.get_close_matches(key, known, n=1)
+            hint = f" (did you mean {near[0]!r}?)" if near else ""
+            allowed = ", ".join(known) if known else "none (this agent has no hyperparameters)"
+            raise ConfigError(f"{agent_name}.{key}", value, f"a hyperparameter among {allowed}"
+                              + hint)
+    return schema(**given)
+
+
+@dataclasses.dataclass(frozen=True)
+class NoHyperparameters:
+    """For agents without hyperparameters."""
+
+
+# --- the protocol --------------------------------------------------------------
+
+
+class Agent(abc.ABC):
+    """Abstract base of every needbench agent.
+
+    Subclasses set ``name`` (the registry name) and ``Hyperparameters`` (a
+    frozen dataclass with defaults), and implement ``learn`` and ``act``. To be
+    saved they override ``_get_state``/``_set_state``.
+    """
+
+    name: ClassVar[str] = ""
+    Hyperparameters: ClassVar[type] = NoHyperparameters
+
+    def __init__(self, observation_space: spaces.Space, action_space: spaces.Space,
+                 **hyperparameters: Any):
+        if not isinstance(observation_space, spaces.Space):
+            raise ConfigError("observation_space", observation_space, "a gymnasium Space")
+        if not isinstance(action_space, spaces.Space):
+            raise ConfigError("action_space", action_space, "a gymnasium Space")
+        self.observation_space = observation_space
+        self.action_space = action_space
+        self.hyperparameters = build_hyperparameters(type(self).Hyperparameters,
+                                                     hyperparameters, self.name)
+
+    @abc.abstractmethod
+    def learn(self, env: gym.Env | VectorEnv, total_steps: int, seed: int,
+              logger: Logger | None = None) -> Agent:
+        """Learn from ``env`` for ``total_steps`` env steps (summed over copies); returns self."""
+
+    @abc.abstractmethod
+    def act(self, observations: np.ndarray, deterministic: bool = True) -> np.ndarray:
+        """Actions (B, ...) for a batch of observations (B, ...)."""
+
+    # --- persistence -----------------------------------------------------------
+
+    def _get_state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """(JSON-able metadata, named arrays) that together hold what was learned."""
+        return {}, {}
+
+    def _set_state(self, meta: Mapping[str, Any], arrays: Mapping[str, np.ndarray]) -> None:
+        """Put back what ``_get_state`` returned (default: an agent that learns nothing)."""
+        if arrays:
+            raise ConfigError("state", sorted(arrays), f"no learned arrays for {self.name!r}")
+
+    def save(self, path: str | os.PathLike) -> None:
+        """Write the agent to ``path`` in the agent file format (module docstring)."""
+        meta, state = self._get_state()
+        observation_record, observation_arrays = encode_space(self.observation_space,
+                                                              "observation_space")
+        action_record, action_arrays = encode_space(self.action_space, "action_space")
+        header = {
+            "format": FILE_FORMAT,
+            "format_version": FILE_FORMAT_VERSION,
+            "agent": self.name,
+            "hyperparameters": dataclasses.asdict(self.hyperparameters),
+            "observation_space": observation_record,
+            "action_space": action_record,
+            "state": meta,
+        }
+        try:
+            text = json.dumps(header, allow_nan=False)
+        except (TypeError, ValueError) as error:
+            raise ConfigError("hyperparameters", header["hyperparameters"],
+                              f"finite JSON-able values ({error})") from error
+        arrays: dict[str, np.ndarray] = {"header": np.array(text)}
+        arrays.update({f"space/observation/{k}": v for k, v in observation_arrays.items()})
+        arrays.update({f"space/action/{k}": v for k, v in action_arrays.items()})
+        arrays.update({f"state/{k}": np.asarray(v) for k, v in state.items()})
+        path = Path(path)
+        # Write beside the target and rename, so a crash never leaves half a file.
+        handle, temporary = tempfile.mkstemp(dir=path.parent, suffix=".partial")
+        try:
+            with os.fdopen(handle, "wb") as stream:
+                np.savez_compressed(stream, **arrays)
+            os.replace(temporary, path)
+        except BaseException:
+            if os.path.exists(temporary):
+                os.remove(temporary)
+            raise
+
+    @classmethod
+    def load(cls, path: str | os.PathLike) -> Agent:
+        """Read an agent file. ``Agent.load`` dispatches on the stored registry name;
+        ``SomeAgent.load`` also checks that the file holds that agent."""
+        header, arrays = read_agent_file(path)
+        stored = header["agent"]
+        if cls is Agent:
+            from needbench.agents.registry import AGENTS  # the registry imports this module
+
+            if stored not in AGENTS:
+                raise ConfigError(f"{path}: agent", stored, "a registered agent name")
+            target = AGENTS[stored]
+        else:
+            if stored != cls.name:
+                raise ConfigError(f"{path}: agent", stored, f"{cls.name!r} (use Agent.load "
+                                  "to read any agent)")
+            target = cls
+        observation_space = decode_space(header["observation_space"], arrays, "observation")
+        action_space = decode_space(header["action_space"], arrays, "action")
+        agent = target(observation_space, action_space, **header["hyperparameters"])
+        state = {k[len("state/"):]: v for k, v in arrays.items() if k.startswith("state/")}
+        agent._set_state(header["state"], state)
+        return agent
+
+
+def read_agent_file(path: str | os.PathLike) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """(header, arrays) of an agent file; ConfigError if it is not one."""
+    allowed = f"a {FILE_FORMAT} file (format version {FILE_FORMAT_VERSION}) written by Agent.save"
+    try:
+        with np.load(path, allow_pickle=False) as archive:
+            arrays = {key: archive[key] for key in archive.files}
+    except (OSError, ValueError) as error:
+        raise ConfigError("path", str(path), allowed) from error
+    try:
+        header = json.loads(str(arrays.pop("header")))
+    except (KeyError, ValueError) as error:
+        raise ConfigError("path", str(path), allowed) from error
+    if header.get("format") != FILE_FORMAT or header.get("format_version") != FILE_FORMAT_VERSION:
+        raise ConfigError("path", str(path), allowed)
+    return header, arrays
+
+
+# --- spaces on disk --------------------------------------------------------------
+
+
+def encode_space(space: spaces.Space, path: str) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """(JSON record, arrays) describing a Discrete, MultiDiscrete, MultiBinary or Box space."""
+    if isinstance(space, spaces.Discrete):
+        return {"type": "Discrete", "n": int(space.n), "start": int(space.start)}, {}
+    if isinstance(space, spaces.MultiDiscrete):
+        return ({"type": "MultiDiscrete", "dtype": str(space.dtype)},
+                {"nvec": np.asarray(space.nvec), "start": np.asarray(space.start)})
+    if isinstance(space, spaces.MultiBinary):
+        return {"type": "MultiBinary", "n": np.asarray(space.n).tolist()}, {}
+    if isinstance(space, spaces.Box):
+        return ({"type": "Box", "dtype": str(space.dtype)},
+                {"low": np.asarray(space.low), "high": np.asarray(space.high)})
+    raise ConfigError(path, space, "a Discrete, MultiDiscrete, MultiBinary or Box space")
+
+
+def decode_space(record: Mapping[str, Any], arrays: Mapping[str, np.ndarray],
+                 role: str) -> spaces.Space:
+    """The space written by :func:`encode_space`."""
+    kind = record.get("type")
+    prefix = f"space/{role}/"
+    if kind == "Discrete":
+        return spaces.Discrete(record["n"], start=record["start"])
+    if kind == "MultiDiscrete":
+        return spaces.MultiDiscrete(arrays[prefix + "nvec"], dtype=record["dtype"],
+                                    start=arrays[prefix + "start"])
+    if kind == "MultiBinary":
+        return spaces.MultiBinary(record["n"])
+    if kind == "Box":
+        return spaces.Box(arrays[prefix + "low"], arrays[prefix + "high"],
+                          dtype=np.dtype(record["dtype"]))
+    raise ConfigError(f"{role}_space.type", kind, "Discrete, MultiDiscrete, MultiBinary or Box")
+
+
+# --- batched stepping --------------------------------------------------------------
+
+
+def as_vector_env(env: gym.Env | VectorEnv) -> VectorEnv:
+    """A vector env view of ``env``: itself if it already is one, else a batch of one copy.
+
+    The single env is wrapped in Gymnasium's SyncVectorEnv (next-step autoreset),
+    so learners have one batched code path. Closing the wrapper closes ``env``.
+    """
+    if isinstance(env, VectorEnv):
+        return env
+    if isinstance(env, gym.Env):
+        return SyncVectorEnv([lambda: env], autoreset_mode=AutoresetMode.NEXT_STEP)
+    raise ConfigError("env", env, "a gymnasium.Env or a gymnasium.vector.VectorEnv")
+
+
+def autoreset_mode(env: VectorEnv) -> AutoresetMode:
+    """The vector env's autoreset mode (Gymnasium's default, NEXT_STEP, if it declares none)."""
+    mode = env.metadata.get("autoreset_mode", AutoresetMode.NEXT_STEP)
+    return mode if isinstance(mode, AutoresetMode) else AutoresetMode(mode)
+
+
+def require_next_step_autoreset(env: VectorEnv) -> None:
+    """Raise unless ``env`` autoresets in next-step mode (what the batched learners assume)."""
+    mode = autoreset_mode(env)
+    if mode != AutoresetMode.NEXT_STEP:
+        raise ConfigError("env.metadata['autoreset_mode']", mode,
+                          "AutoresetMode.NEXT_STEP (Gymnasium's default)")
+
+
+def single_unwrapped(env: gym.Env | VectorEnv) -> Any:
+    """The innermost single env behind ``env`` (copy 0 of a SyncVectorEnv), or the
+    native vector env itself (which carries the task core)."""
+    if isinstance(env, VectorEnv):
+        copies = getattr(env.unwrapped, "envs", None)
+        if copies:
+            return copies[0].unwrapped
+        return env.unwrapped
+    return env.unwrapped
+
+
+def task_core(env: gym.Env | VectorEnv) -> Any | None:
+    """The needbench task core behind ``env`` (``env.unwrapped.core``), or None."""
+    return getattr(single_unwrapped(env), "core", None)
+
+
+def batch_size(observations: Any) -> int:
+    """B, the leading axis of a batch of observations (array or dict of arrays)."""
+    if isinstance(observations, Mapping):
+        return batch_size(next(iter(observations.values())))
+    return int(np.shape(observations)[0])
+
+
+# --- seeding ------------------------------------------------------------------------
+
+
+def check_seed(path: str, seed: Any) -> int:
+    """A seed is a whole number >= 0."""
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ConfigError(path, seed, "a whole number >= 0")
+    return int(seed)
+
+
+def check_total_steps(total_steps: Any) -> int:
+    if (isinstance(total_steps, (bool, np.bool_)) or not isinstance(total_steps, (int, np.integer))
+            or total_steps < 0):
+        raise ConfigError("total_steps", total_steps, "a whole number >= 0")
+    return int(total_steps)
+
+
+def copy_seeds(seed: int, copies: int) -> tuple[list[int], np.ndarray]:
+    """Reset seeds (C ints < 2**31) and exploration-stream keys (C uint64) of C copies.
+
+    Both are drawn from ``numpy.random.SeedSequence(seed, spawn_key=(j,))`` for
+    copy j, so they depend on (seed, j) alone and distinct seeds never share
+    env streams (unlike the ``seed + j`` convention).
+    """
+    seed = check_seed("seed", seed)
+    reset_seeds = []
+    keys = np.empty(copies, dtype=np.uint64)
+    for j in range(copies):
+        words = np.random.SeedSequence(seed, spawn_key=(j,)).generate_state(3, dtype=np.uint32)
+        reset_seeds.append(int(words[0] >> np.uint32(1)))
+        keys[j] = (np.uint64(words[1]) << np.uint64(32)) | np.uint64(words[2])
+    return reset_seeds, keys
