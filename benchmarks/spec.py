@@ -1,0 +1,610 @@
+"""Benchmark suites: TOML files parsed into frozen, validated dataclasses, then expanded into jobs.
+
+A suite file (parsed with the standard library's ``tomllib``):
+
+    [suite]
+    name = "warm-day"                 # required
+    description = "Two tasks, ..."    # optional
+    seeds = [0, 1, 2]                 # required: distinct integers >= 0
+    eval_episodes = 10                # optional: evaluation episodes per job, >= 1 (default 10)
+    gamma = 0.99                      # optional: discount in (0, 1) for metrics (default 0.99)
+
+    [[task]]                          # one or more
+    id = "needbench/Menu-v0"          # a registered Gymnasium id
+    [task.kwargs]                     # optional: keyword arguments for gymnasium.make
+    task_weight = 0.0
+
+    [[agent]]                         # one or more
+    name = "tabular-q"                # a registered agent name
+    total_steps = 20000               # learning budget in env steps, >= 0
+    [agent.hyperparameters]           # optional: keyword arguments for make_agent
+    learning_rate = 0.1
+
+    [[sweep]]                         # zero or more; their grids multiply
+    target = "task"                   # 'task' (a kwarg), 'agent' (a hyperparameter) or 'gamma'
+    parameter = "task_weight"         # the kwarg or hyperparameter ('total_steps' for the
+                                      # agent's budget); omit for 'gamma'
+    values = [0.0, 0.5, 1.0]
+    match = "needbench/Menu-v0"       # optional: only this task id (or agent name)
+
+:func:`expand` turns a suite into jobs, one per task x agent x seed x point of
+the sweep grid. A job carries its fully resolved config (sweep values already
+written into the task kwargs, agent hyperparameters or gamma) and a hash of it,
+the job's identity in the results store.
+
+Every problem raises :class:`SuiteError`, naming the file, the key path (e.g.
+``agent[1].total_steps``), the bad value and what is allowed, with the nearest
+valid name suggested for a misspelt key, task id or agent name.
+"""
+
+from __future__ import annotations
+
+import copy
+import datetime
+import difflib
+import hashlib
+import itertools
+import json
+import math
+import tomllib
+from collections.abc import Collection, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from needbench.envs.errors import ConfigError
+
+SWEEP_TARGETS = ("task", "agent", "gamma")
+DEFAULT_EVAL_EPISODES = 10
+DEFAULT_GAMMA = 0.99
+
+
+class SuiteError(ConfigError):
+    """A suite file is invalid.
+
+    Attributes (besides ConfigError's ``path``, ``value``, ``allowed``):
+        source: the suite file's path, or ``<string>`` for text.
+        suggestion: the nearest valid key or name, when one is close.
+    """
+
+    def __init__(self, source: str, path: str, value: Any, allowed: str,
+                 suggestion: str | None = None):
+        self.source = source
+        self.suggestion = suggestion
+        if suggestion is not None:
+            allowed = f"{allowed} (did you mean {suggestion!r}?)"
+        super().__init__(path, value, allowed, context=source)
+
+
+class _Missing:
+    """Stands for a required key that is absent (shown as <missing> in messages)."""
+
+    def __repr__(self) -> str:
+        return "<missing>"
+
+
+MISSING = _Missing()
+
+
+# ----------------------------------------------------------------------------
+# The suite, as dataclasses
+# ----------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class TaskSpec:
+    """A task of the suite: a Gymnasium id and the keyword arguments to make it with."""
+
+    id: str
+    kwargs: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class AgentSpec:
+    """An agent of the suite: its registry name, learning budget and hyperparameters.
+
+    Attributes:
+        total_steps: environment steps of learning before evaluation (0 = none).
+    """
+
+    name: str
+    total_steps: int
+    hyperparameters: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Sweep:
+    """One axis of the sweep grid.
+
+    Attributes:
+        target: 'task' (sets a task kwarg), 'agent' (an agent hyperparameter)
+            or 'gamma' (the suite's discount).
+        parameter: the kwarg or hyperparameter name; 'gamma' for target 'gamma';
+            for target 'agent', 'total_steps' sweeps the learning budget.
+        values: the values the axis takes, one job per value.
+        match: restricts the axis to one task id ('task'), one agent name
+            ('agent'), or either ('gamma'); None applies it everywhere.
+    """
+
+    target: str
+    parameter: str
+    values: tuple[Any, ...]
+    match: str | None = None
+
+    @property
+    def label(self) -> str:
+        """Key of this axis in a job's ``sweep`` dict, e.g. ``task.task_weight`` or ``gamma``."""
+        return "gamma" if self.target == "gamma" else f"{self.target}.{self.parameter}"
+
+    def applies_to(self, task_id: str, agent_name: str) -> bool:
+        if self.match is None:
+            return True
+        if self.target == "task":
+            return self.match == task_id
+        if self.target == "agent":
+            return self.match == agent_name
+        return self.match in (task_id, agent_name)
+
+
+@dataclass(frozen=True)
+class Suite:
+    """A validated suite: what to run (tasks x agents x seeds x sweeps) and how to score it.
+
+    Attributes:
+        eval_episodes: evaluation episodes per job.
+        gamma: discount factor in (0, 1) for the discounted metrics.
+        source: the file it came from (not part of equality).
+    """
+
+    name: str
+    description: str
+    tasks: tuple[TaskSpec, ...]
+    agents: tuple[AgentSpec, ...]
+    seeds: tuple[int, ...]
+    eval_episodes: int = DEFAULT_EVAL_EPISODES
+    gamma: float = DEFAULT_GAMMA
+    sweeps: tuple[Sweep, ...] = ()
+    source: str = field(default="<string>", compare=False)
+
+
+# ----------------------------------------------------------------------------
+# Parsing
+# ----------------------------------------------------------------------------
+
+_TOP_KEYS = ("suite", "task", "agent", "sweep")
+_SUITE_KEYS = ("name", "description", "seeds", "eval_episodes", "gamma")
+_TASK_KEYS = ("id", "kwargs")
+_AGENT_KEYS = ("name", "total_steps", "hyperparameters")
+_SWEEP_KEYS = ("target", "parameter", "values", "match")
+
+
+def _is_integer(value: Any) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
+def _nearest(word: str, choices: Collection[str]) -> str | None:
+    matches = difflib.get_close_matches(word, list(choices), n=1)
+    return matches[0] if matches else None
+
+
+def _join(path: str, key: str) -> str:
+    return f"{path}.{key}" if path else key
+
+
+class _Parser:
+    """Reads one suite document; every check raises SuiteError naming ``source``."""
+
+    def __init__(self, source: str):
+        self.source = source
+
+    def error(self, path: str, value: Any, allowed: str, suggestion: str | None = None):
+        return SuiteError(self.source, path, value, allowed, suggestion)
+
+    def check_keys(self, table: Mapping[str, Any], allowed: tuple[str, ...], path: str) -> None:
+        for key in table:
+            if key not in allowed:
+                raise self.error(_join(path, key), table[key],
+                                 f"one of the keys {', '.join(map(repr, allowed))}"
+                                 + (f" of {path}" if path else " at the top level"),
+                                 _nearest(key, allowed))
+
+    def table(self, value: Any, path: str, *, header: str) -> dict[str, Any]:
+        if not isinstance(value, dict):
+            raise self.error(path, value, f"a table ({header})")
+        return value
+
+    def tables(self, document: Mapping[str, Any], key: str, *, required: bool) -> list[dict]:
+        """An array of tables, ``[[key]]``."""
+        value = document.get(key, MISSING)
+        if value is MISSING:
+            if required:
+                raise self.error(key, MISSING, f"at least one [[{key}]] table")
+            return []
+        if isinstance(value, dict) or not isinstance(value, list) \
+                or not all(isinstance(item, dict) for item in value):
+            raise self.error(key, value, f"an array of tables: write each as [[{key}]]")
+        if required and not value:
+            raise self.error(key, value, f"at least one [[{key}]] table")
+        return value
+
+    def string(self, table: Mapping[str, Any], key: str, path: str, *,
+               default: Any = MISSING, what: str = "a non-empty string") -> str:
+        value = table.get(key, default)
+        if value is MISSING or not isinstance(value, str) or (not value and default is MISSING):
+            raise self.error(_join(path, key), value,
+                             what + (" (required)" if value is MISSING else ""))
+        return value
+
+    def integer(self, table: Mapping[str, Any], key: str, path: str, *, minimum: int,
+                default: Any = MISSING) -> int:
+        value = table.get(key, default)
+        if not _is_integer(value) or value < minimum:
+            raise self.error(_join(path, key), value,
+                             f"an integer >= {minimum}" + (" (required)" if value is MISSING
+                                                           else ""))
+        return value
+
+    def gamma(self, value: Any, path: str) -> float:
+        if not isinstance(value, (int, float)) or isinstance(value, bool) \
+                or not 0.0 < value < 1.0:
+            raise self.error(path, value, "a discount factor in (0, 1), e.g. 0.99")
+        return float(value)
+
+    def plain_value(self, value: Any, path: str) -> Any:
+        """A value that JSON can hold (for the job hash): no TOML dates or times."""
+        if isinstance(value, dict):
+            return {key: self.plain_value(item, _join(path, key)) for key, item in value.items()}
+        if isinstance(value, list):
+            return [self.plain_value(item, f"{path}[{i}]") for i, item in enumerate(value)]
+        if isinstance(value, (datetime.date, datetime.time)):
+            raise self.error(path, value, "a string, number, boolean, array or table "
+                                          "(TOML dates and times are not supported)")
+        return value
+
+    def name(self, value: str, path: str, known: Collection[str] | None, what: str) -> str:
+        if known is not None and value not in known:
+            raise self.error(path, value, f"a registered {what}: {', '.join(sorted(known))}",
+                             _nearest(value, known))
+        return value
+
+    # -- sections --------------------------------------------------------------
+
+    def suite_table(self, document: Mapping[str, Any]) -> dict[str, Any]:
+        if "suite" not in document:
+            raise self.error("suite", MISSING, "a [suite] table with at least name and seeds")
+        suite = self.table(document["suite"], "suite", header="[suite]")
+        self.check_keys(suite, _SUITE_KEYS, "suite")
+        seeds = suite.get("seeds", MISSING)
+        allowed = "a non-empty array of distinct integers >= 0, e.g. [0, 1, 2]"
+        if not isinstance(seeds, list) or not seeds:
+            raise self.error("suite.seeds", seeds,
+                             allowed + (" (required)" if seeds is MISSING else ""))
+        for i, seed in enumerate(seeds):
+            if not _is_integer(seed) or seed < 0:
+                raise self.error(f"suite.seeds[{i}]", seed, "an integer >= 0")
+            if seed in seeds[:i]:
+                raise self.error(f"suite.seeds[{i}]", seed, "a seed not already listed")
+        return {
+            "name": self.string(suite, "name", "suite"),
+            "description": self.string(suite, "description", "suite", default="",
+                                       what="a string"),
+            "seeds": tuple(seeds),
+            "eval_episodes": self.integer(suite, "eval_episodes", "suite", minimum=1,
+                                          default=DEFAULT_EVAL_EPISODES),
+            "gamma": self.gamma(suite.get("gamma", DEFAULT_GAMMA), "suite.gamma"),
+        }
+
+    def task(self, table: dict[str, Any], path: str, known: Collection[str] | None) -> TaskSpec:
+        self.check_keys(table, _TASK_KEYS, path)
+        task_id = self.name(self.string(table, "id", path), f"{path}.id", known, "task id")
+        kwargs = self.table(table.get("kwargs", {}), f"{path}.kwargs",
+                            header=f"[{path.split('[')[0]}.kwargs]")
+        return TaskSpec(task_id, self.plain_value(kwargs, f"{path}.kwargs"))
+
+    def agent(self, table: dict[str, Any], path: str, known: Collection[str] | None) -> AgentSpec:
+        self.check_keys(table, _AGENT_KEYS, path)
+        name = self.name(self.string(table, "name", path), f"{path}.name", known, "agent name")
+        total_steps = self.integer(table, "total_steps", path, minimum=0)
+        hyperparameters = self.table(table.get("hyperparameters", {}),
+                                     f"{path}.hyperparameters",
+                                     header=f"[{path.split('[')[0]}.hyperparameters]")
+        return AgentSpec(name, total_steps,
+                         self.plain_value(hyperparameters, f"{path}.hyperparameters"))
+
+    def sweep(self, table: dict[str, Any], path: str, task_ids: list[str],
+              agent_names: list[str]) -> Sweep:
+        self.check_keys(table, _SWEEP_KEYS, path)
+        target = table.get("target", MISSING)
+        if target not in SWEEP_TARGETS:
+            raise self.error(f"{path}.target", target,
+                             f"one of {', '.join(map(repr, SWEEP_TARGETS))}"
+                             + (" (required)" if target is MISSING else ""),
+                             _nearest(target, SWEEP_TARGETS) if isinstance(target, str) else None)
+        if target == "gamma":
+            parameter = table.get("parameter", "gamma")
+            if parameter != "gamma":
+                raise self.error(f"{path}.parameter", parameter,
+                                 "'gamma' or no parameter, for target 'gamma'")
+        else:
+            parameter = self.string(table, "parameter", path,
+                                    what=f"the name of the {target} parameter to sweep")
+        values = table.get("values", MISSING)
+        if not isinstance(values, list) or not values:
+            raise self.error(f"{path}.values", values, "a non-empty array of values"
+                             + (" (required)" if values is MISSING else ""))
+        values = self.plain_value(values, f"{path}.values")
+        seen: list[str] = []
+        for i, value in enumerate(values):
+            if target == "gamma":
+                self.gamma(value, f"{path}.values[{i}]")
+            if target == "agent" and parameter == "total_steps" \
+                    and (not _is_integer(value) or value < 0):
+                raise self.error(f"{path}.values[{i}]", value, "an integer >= 0 (a step budget)")
+            if canonical_json(value) in seen:
+                raise self.error(f"{path}.values[{i}]", value, "a value not already listed")
+            seen.append(canonical_json(value))
+        match = table.get("match")
+        if match is not None:
+            candidates = {"task": task_ids, "agent": agent_names,
+                          "gamma": task_ids + agent_names}[target]
+            what = {"task": "task id of this suite", "agent": "agent name of this suite",
+                    "gamma": "task id or agent name of this suite"}[target]
+            if match not in candidates:
+                shown = match if isinstance(match, str) else None
+                raise self.error(f"{path}.match", match,
+                                 f"a {what}: {', '.join(map(repr, candidates))}",
+                                 _nearest(shown, candidates) if shown else None)
+        return Sweep(target, parameter, tuple(values), match)
+
+    # -- the whole document ----------------------------------------------------
+
+    def suite(self, document: dict[str, Any], known_tasks: Collection[str] | None,
+              known_agents: Collection[str] | None) -> Suite:
+        self.check_keys(document, _TOP_KEYS, "")
+        header = self.suite_table(document)
+        tasks = tuple(self.task(table, f"task[{i}]", known_tasks)
+                      for i, table in enumerate(self.tables(document, "task", required=True)))
+        agents = tuple(self.agent(table, f"agent[{i}]", known_agents)
+                       for i, table in enumerate(self.tables(document, "agent", required=True)))
+        for kind, items, attribute in (("task", tasks, "id"), ("agent", agents, "name")):
+            names = [getattr(item, attribute) for item in items]
+            for i, name in enumerate(names):
+                if name in names[:i]:
+                    raise self.error(f"{kind}[{i}].{attribute}", name,
+                                     f"a {kind} {attribute} not already listed "
+                                     "(use a [[sweep]] to vary its settings)")
+        task_ids = [task.id for task in tasks]
+        agent_names = [agent.name for agent in agents]
+        sweeps = tuple(self.sweep(table, f"sweep[{i}]", task_ids, agent_names)
+                       for i, table in enumerate(self.tables(document, "sweep", required=False)))
+        self.check_sweep_overlap(sweeps, tasks, agents)
+        return Suite(tasks=tasks, agents=agents, sweeps=sweeps, source=self.source, **header)
+
+    def check_sweep_overlap(self, sweeps: tuple[Sweep, ...], tasks: tuple[TaskSpec, ...],
+                            agents: tuple[AgentSpec, ...]) -> None:
+        """Two sweeps may not set the same parameter of the same job."""
+        for task, agent in itertools.product(tasks, agents):
+            first: dict[str, int] = {}
+            for i, sweep in enumerate(sweeps):
+                if not sweep.applies_to(task.id, agent.name):
+                    continue
+                if sweep.label in first:
+                    raise self.error(f"sweep[{i}]", sweep.label,
+                                     f"a parameter no other sweep sets for task {task.id!r} "
+                                     f"and agent {agent.name!r} (sweep[{first[sweep.label]}] "
+                                     "already does; give each a different match)")
+                first[sweep.label] = i
+
+
+def _read(source: str | Path) -> tuple[str, str]:
+    """(text, source name) from a path or from TOML text.
+
+    A ``Path``, or a one-line string ending in ``.toml``, is read as a file;
+    any other string is the TOML text itself.
+    """
+    is_file = isinstance(source, Path) or ("\n" not in source
+                                           and source.strip().endswith(".toml"))
+    if not is_file:
+        return str(source), "<string>"
+    path = Path(source)
+    try:
+        return path.read_text(encoding="utf-8"), str(path)
+    except FileNotFoundError as error:
+        raise SuiteError(str(path), "file", str(path), "an existing suite file") from error
+    except UnicodeDecodeError as error:
+        raise SuiteError(str(path), "file", str(path), "a UTF-8 encoded TOML file") from error
+
+
+def parse_suite(source: str | Path, known_tasks: Collection[str] | None = None,
+                known_agents: Collection[str] | None = None) -> Suite:
+    """Parse and validate a suite from a file path or from TOML text.
+
+    Args:
+        source: a ``Path`` or ``*.toml`` path string, or the TOML text.
+        known_tasks: registered task ids to check ``task[i].id`` against
+            (None skips the check).
+        known_agents: registered agent names to check ``agent[i].name`` against
+            (None skips the check).
+
+    Raises:
+        SuiteError: for any problem, naming the file, key path, value and what is allowed.
+    """
+    text, name = _read(source)
+    try:
+        document = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as error:
+        raise SuiteError(name, "toml syntax", str(error), "valid TOML") from error
+    return _Parser(name).suite(document, known_tasks, known_agents)
+
+
+# ----------------------------------------------------------------------------
+# Jobs
+# ----------------------------------------------------------------------------
+
+def canonical_json(value: Any) -> str:
+    """JSON with sorted keys and no spaces: equal configs give equal text."""
+    return json.dumps(value, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+
+
+def config_hash(config: Mapping[str, Any]) -> str:
+    """sha256 (hex) of the config's canonical JSON."""
+    return hashlib.sha256(canonical_json(config).encode("utf-8")).hexdigest()
+
+
+@dataclass(frozen=True)
+class Job:
+    """One unit of work: learn one agent on one task with one seed, then evaluate.
+
+    ``config`` is fully resolved (sweep values written in):
+
+        {"suite": str, "seed": int, "eval_episodes": int, "gamma": float,
+         "task": {"id": str, "kwargs": {...}},
+         "agent": {"name": str, "total_steps": int, "hyperparameters": {...}},
+         "sweep": {"task.task_weight": 0.5, ...}}    # this job's grid point
+
+    ``hash`` is the sha256 of its canonical JSON, so it changes with any field
+    and not with key order. The suite name is part of the config: two suites
+    never share runs.
+    """
+
+    config: dict[str, Any]
+    hash: str = field(init=False)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "hash", config_hash(self.config))
+
+    def __hash__(self) -> int:
+        return hash(self.hash)
+
+    @property
+    def task_id(self) -> str:
+        return self.config["task"]["id"]
+
+    @property
+    def agent_name(self) -> str:
+        return self.config["agent"]["name"]
+
+    @property
+    def seed(self) -> int:
+        return self.config["seed"]
+
+    def describe(self) -> str:
+        """A short label, e.g. ``needbench/Menu-v0 tabular-q seed=0 task.task_weight=0.5``."""
+        point = " ".join(f"{label}={canonical_json(value)}"
+                         for label, value in sorted(self.config["sweep"].items()))
+        return " ".join(part for part in (self.task_id, self.agent_name, f"seed={self.seed}",
+                                          point) if part)
+
+
+def _resolve(suite: Suite, task: TaskSpec, agent: AgentSpec, seed: int,
+             point: tuple[tuple[Sweep, Any], ...]) -> dict[str, Any]:
+    """The config of one job: the suite's settings with this grid point written in."""
+    kwargs = copy.deepcopy(task.kwargs)
+    hyperparameters = copy.deepcopy(agent.hyperparameters)
+    gamma = suite.gamma
+    total_steps = agent.total_steps
+    for sweep, value in point:
+        if sweep.target == "task":
+            kwargs[sweep.parameter] = copy.deepcopy(value)
+        elif sweep.target == "agent" and sweep.parameter == "total_steps":
+            total_steps = value
+        elif sweep.target == "agent":
+            hyperparameters[sweep.parameter] = copy.deepcopy(value)
+        else:
+            gamma = float(value)
+    return {
+        "suite": suite.name,
+        "seed": seed,
+        "eval_episodes": suite.eval_episodes,
+        "gamma": gamma,
+        "task": {"id": task.id, "kwargs": kwargs},
+        "agent": {"name": agent.name, "total_steps": total_steps,
+                  "hyperparameters": hyperparameters},
+        "sweep": {sweep.label: copy.deepcopy(value) for sweep, value in point},
+    }
+
+
+def expand(suite: Suite) -> list[Job]:
+    """All jobs of a suite, in the order tasks x agents x seeds x sweep grid.
+
+    For each (task, agent) pair, the sweeps that apply to it (see
+    :attr:`Sweep.match`) span a cartesian grid; sweeps that do not apply add
+    no jobs. Without sweeps the grid is a single point.
+    """
+    jobs = []
+    for task in suite.tasks:
+        for agent in suite.agents:
+            sweeps = [sweep for sweep in suite.sweeps if sweep.applies_to(task.id, agent.name)]
+            for seed in suite.seeds:
+                for values in itertools.product(*(sweep.values for sweep in sweeps)):
+                    point = tuple(zip(sweeps, values, strict=True))
+                    jobs.append(Job(_resolve(suite, task, agent, seed, point)))
+    return jobs
+
+
+# ----------------------------------------------------------------------------
+# Writing a suite back to TOML
+# ----------------------------------------------------------------------------
+
+def _toml_string(text: str) -> str:
+    escaped = []
+    for character in text:
+        if character in ('"', "\\"):
+            escaped.append("\\" + character)
+        elif ord(character) < 0x20 or ord(character) == 0x7F:
+            escaped.append(f"\\u{ord(character):04X}")
+        else:
+            escaped.append(character)
+    return '"' + "".join(escaped) + '"'
+
+
+def _toml_key(key: str) -> str:
+    bare = key and all(c.isascii() and (c.isalnum() or c in "-_") for c in key)
+    return key if bare else _toml_string(key)
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        if math.isnan(value):
+            return "nan"
+        if math.isinf(value):
+            return "inf" if value > 0 else "-inf"
+        return repr(value)
+    if isinstance(value, str):
+        return _toml_string(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(item) for item in value) + "]"
+    if isinstance(value, Mapping):
+        return "{" + ", ".join(f"{_toml_key(k)} = {_toml_value(v)}"
+                               for k, v in value.items()) + "}"
+    raise ConfigError("suite value", value, "a string, number, boolean, list or table")
+
+
+def to_toml(suite: Suite) -> str:
+    """The suite as TOML text in the layout :func:`parse_suite` reads."""
+    lines = ["[suite]", f"name = {_toml_value(suite.name)}",
+             f"description = {_toml_value(suite.description)}",
+             f"seeds = {_toml_value(list(suite.seeds))}",
+             f"eval_episodes = {suite.eval_episodes}", f"gamma = {_toml_value(suite.gamma)}"]
+    for task in suite.tasks:
+        lines += ["", "[[task]]", f"id = {_toml_value(task.id)}"]
+        if task.kwargs:
+            lines.append("[task.kwargs]")
+            lines += [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in task.kwargs.items()]
+    for agent in suite.agents:
+        lines += ["", "[[agent]]", f"name = {_toml_value(agent.name)}",
+                  f"total_steps = {agent.total_steps}"]
+        if agent.hyperparameters:
+            lines.append("[agent.hyperparameters]")
+            lines += [f"{_toml_key(k)} = {_toml_value(v)}"
+                      for k, v in agent.hyperparameters.items()]
+    for sweep in suite.sweeps:
+        lines += ["", "[[sweep]]", f"target = {_toml_value(sweep.target)}",
+                  f"parameter = {_toml_value(sweep.parameter)}",
+                  f"values = {_toml_value(list(sweep.values))}"]
+        if sweep.match is not None:
+            lines.append(f"match = {_toml_value(sweep.match)}")
+    return "\n".join(lines) + "\n"
