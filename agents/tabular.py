@@ -87,7 +87,8 @@ class TabularQHyperparameters:
     # None: the task's number of needs when its observation starts with them, else 0
     internal_bins: int = 8  # bins per internal dimension
     internal_range: float = 4.0  # internal bins cover [-range, +range] comfort-band units
-    world_bins: int = 4  # bins per world (non-internal) Box dimension
+    world_bins: int | list[int] = 4  # bins per world Box dimension: one number, or one per
+    # world feature (1 ignores that feature)
     world_low: float | list[float] | None = None  # lower edge of the world bins (None: Box low)
     world_high: float | list[float] | None = None  # upper edge of the world bins (None: Box high)
 
@@ -108,7 +109,12 @@ class TabularQHyperparameters:
             _check_whole(f"{name}.internal_dimensions", self.internal_dimensions, 0)
         _check_whole(f"{name}.internal_bins", self.internal_bins, 1)
         check_range(f"{name}.internal_range", self.internal_range, 0.0, math.inf, closed=False)
-        _check_whole(f"{name}.world_bins", self.world_bins, 1)
+        if isinstance(self.world_bins, (list, tuple, np.ndarray)):
+            object.__setattr__(self, "world_bins", [
+                _check_whole(f"{name}.world_bins[{i}]", b, 1)
+                for i, b in enumerate(self.world_bins)])
+        else:
+            _check_whole(f"{name}.world_bins", self.world_bins, 1)
         for field in ("world_low", "world_high"):
             value = getattr(self, field)
             if isinstance(value, (tuple, np.ndarray)):
@@ -163,7 +169,11 @@ class StateIndexer:
         bins = np.empty(size, dtype=np.int64)
         low[:internal], high[:internal] = -hp.internal_range, hp.internal_range
         bins[:internal] = hp.internal_bins
-        bins[internal:] = hp.world_bins
+        world_bins = np.asarray(hp.world_bins, dtype=np.int64)
+        if world_bins.ndim == 1 and world_bins.shape != (world,):
+            raise ConfigError("tabular-q.world_bins", hp.world_bins,
+                              f"one number or {world} numbers (one per world feature)")
+        bins[internal:] = world_bins
         box_low = np.asarray(space.low, dtype=np.float64).reshape(-1)[internal:]
         box_high = np.asarray(space.high, dtype=np.float64).reshape(-1)[internal:]
         for target, given, default, field in ((low, hp.world_low, box_low, "world_low"),

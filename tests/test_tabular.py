@@ -393,3 +393,23 @@ def test_configuration_errors_name_the_field():
                       internal_dimensions=12)
     with pytest.raises(RuntimeError, match="learn"):
         new_agent(vec).act(np.zeros(3, dtype=np.int64))
+
+
+def test_world_bins_per_feature():
+    # By hand: Forage-v0 has 3 needs and 11 world features; 6 bins per need and
+    # bins (1, 1, 2, 2, 3, 3, 1, 3, 3, 3, 3) give 6^3 * 2^2 * 3^6 = 629,856 states.
+    import gymnasium as gym
+
+    from needbench.agents import make_agent
+    from needbench.envs.errors import ConfigError
+
+    env = gym.make("needbench/Forage-v0")
+    agent = make_agent("tabular-q", env.observation_space, env.action_space, internal_bins=6,
+                       world_bins=[1, 1, 2, 2, 3, 3, 1, 3, 3, 3, 3])
+    agent.learn(env, 10, seed=0)
+    assert agent.q.shape == (6 ** 3 * 2 ** 2 * 3 ** 6, 5)
+    with pytest.raises(ConfigError, match="world_bins"):
+        make_agent("tabular-q", env.observation_space, env.action_space,
+                   world_bins=[2, 2]).learn(env, 10, seed=0)
+    with pytest.raises(ConfigError, match=r"world_bins\[1\]"):
+        make_agent("tabular-q", env.observation_space, env.action_space, world_bins=[2, 0])
