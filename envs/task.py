@@ -355,11 +355,8 @@ class TaskCore:
 
 def _unbatch(info: dict[str, np.ndarray]) -> dict[str, Any]:
     """Copy 0 of a batched info, with 0-d values as Python scalars."""
-    out = {}
-    for key, value in info.items():
-        item = value[0]
-        out[key] = item.item() if np.ndim(item) == 0 else item
-    return out
+    return {key: value[0].item() if value.ndim == 1 else value[0]
+            for key, value in info.items()}
 
 
 class NeedEnv(gym.Env):
@@ -389,20 +386,26 @@ class NeedEnv(gym.Env):
     def step(self, action):
         if self._needs_reset:
             raise RuntimeError("call reset() before step() (and after an episode ends)")
-        self._check_action(action)
-        batched = self.core.validate_actions(np.asarray(action)[None], self._batched_actions)
-        reward, terminated, truncated, info = self.core.step(batched)
+        reward, terminated, truncated, info = self.core.step(self._one_action(action))
         self._needs_reset = bool(terminated[0] or truncated[0])
         return (self._observation(), float(reward[0]), bool(terminated[0]),
                 bool(truncated[0]), _unbatch(info))
 
-    def _check_action(self, action) -> None:
-        if isinstance(self.action_space, spaces.Discrete):
-            if isinstance(action, (bool, np.bool_)) or np.ndim(action) != 0:
-                raise ActionError(f"action {action!r} is not one integer in {self.action_space}")
-        elif np.shape(action) != self.action_space.shape:
-            raise ActionError(f"action of shape {np.shape(action)} given; "
-                              f"expected {self.action_space.shape}")
+    def _one_action(self, action) -> np.ndarray:
+        """Validate one action and return it as a batch of one."""
+        space = self.action_space
+        if isinstance(space, spaces.Discrete):
+            # The common case first: a plain or numpy integer inside the range.
+            if isinstance(action, (int, np.integer)) and not isinstance(action, (bool, np.bool_)):
+                if space.start <= action < space.start + space.n:
+                    return np.array([action], dtype=np.int64)
+            elif isinstance(action, np.ndarray) and action.shape == () and \
+                    action.dtype.kind in "iu" and space.contains(action):
+                return action.reshape(1).astype(np.int64)
+            raise ActionError(f"action {action!r} is not one integer in {space}")
+        if np.shape(action) != space.shape:
+            raise ActionError(f"action of shape {np.shape(action)} given; expected {space.shape}")
+        return self.core.validate_actions(np.asarray(action)[None], self._batched_actions)
 
     def _observation(self):
         obs = self.core.observe()
