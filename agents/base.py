@@ -56,6 +56,16 @@ FILE_FORMAT = "needbench-agent"
 FILE_FORMAT_VERSION = 1
 
 
+class NotApplicableError(ConfigError):
+    """This agent does not handle this kind of task: its spaces, or a model it needs.
+
+    Raised when an agent is built for, or asked to learn on, a task outside its
+    reach (a Box action space for tabular-q, a task without a finite model for
+    the exact planner...). A suite runner skips such pairs and lists them; any
+    other error of a job is recorded as a failure.
+    """
+
+
 @runtime_checkable
 class Logger(Protocol):
     """Receives scalar curves during learning (TensorBoard writers fit this)."""

@@ -66,7 +66,14 @@ import numpy as np
 from gymnasium import spaces
 from gymnasium.vector import VectorEnv
 
-from needbench.agents.base import Agent, Logger, check_seed, check_total_steps, task_core
+from needbench.agents.base import (
+    Agent,
+    Logger,
+    NotApplicableError,
+    check_seed,
+    check_total_steps,
+    task_core,
+)
 from needbench.envs.drives import Drive, make_drive
 from needbench.envs.errors import ConfigError, check_non_negative
 
@@ -483,7 +490,7 @@ def rule_for(core: Any, action_space: spaces.Space, settings: ControllerHyperpar
         return WindowRule.from_core(core, settings, seed)
     if isinstance(world, ArenaWorld):
         return PlaneRule.from_core(core, settings)
-    raise ConfigError("env", type(world).__name__, SUPPORTED)
+    raise NotApplicableError("env", type(world).__name__, SUPPORTED)
 
 
 # --- the agent -----------------------------------------------------------------------------
@@ -511,10 +518,10 @@ class SetpointController(Agent):
         seed = check_seed("seed", seed)
         core = task_core(env)
         if core is None:
-            raise ConfigError("env", type(env.unwrapped).__name__,
-                              "a needbench task (env.unwrapped.core): " + SUPPORTED)
+            raise NotApplicableError("env", type(env.unwrapped).__name__,
+                                     "a needbench task (env.unwrapped.core): " + SUPPORTED)
         if not core.config.interoception:
-            raise ConfigError("interoception", False, "True: the set-point controller reads "
+            raise NotApplicableError("interoception", False, "True: the set-point controller reads "
                               "the internal state from the observation")
         single = env.single_action_space if isinstance(env, VectorEnv) else env.action_space
         if single != self.action_space:

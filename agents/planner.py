@@ -25,7 +25,14 @@ import numpy as np
 from gymnasium import spaces
 from gymnasium.vector import VectorEnv
 
-from needbench.agents.base import Agent, Logger, check_total_steps, single_unwrapped, task_core
+from needbench.agents.base import (
+    Agent,
+    Logger,
+    NotApplicableError,
+    check_total_steps,
+    single_unwrapped,
+    task_core,
+)
 from needbench.envs.errors import ConfigError, check_positive, check_range
 
 #: Largest allowed |sum_s' P[s, a, s'] - 1|.
@@ -342,7 +349,11 @@ def _model_from_core(core: Any, gamma: float, options: dict[str, Any]) -> EnvMod
     method. A ``(model, state_of)`` pair is accepted too, with ``state_of`` a
     function or an (S, D) table of state observations (see ObservationTable).
     """
-    result = core.finite_model(**options)
+    try:
+        result = core.finite_model(**options)
+    except ConfigError as error:
+        # The task offers no finite model in this configuration.
+        raise NotApplicableError(error.path, error.value, error.allowed) from error
     model, state_of = result if isinstance(result, tuple) else (result, result.state_of)
     mdp = model if isinstance(model, FiniteMDP) else FiniteMDP(
         model.transition, model.reward, getattr(model, "terminal", None), gamma)
@@ -378,10 +389,10 @@ def mdp_from_env(env: gym.Env | VectorEnv, gamma: float, **model_options: Any) -
     if isinstance(getattr(inner, "P", None), dict):
         return mdp_from_toy_text(env, gamma)
     if core is not None:
-        raise ConfigError("env.unwrapped.core.finite_model", None,
+        raise NotApplicableError("env.unwrapped.core.finite_model", None,
                           f"a finite model of the task; {type(inner).__name__} offers none")
-    raise ConfigError("env", type(inner).__name__,
-                      "an env with a finite model: env.unwrapped.core.finite_model "
+    raise NotApplicableError("env", type(inner).__name__,
+                             "an env with a finite model: env.unwrapped.core.finite_model "
                       "(needbench tasks) or env.unwrapped.P (Gymnasium toy-text)")
 
 
@@ -422,7 +433,7 @@ class ExactPlannerAgent(Agent):
                  **hyperparameters: Any):
         super().__init__(observation_space, action_space, **hyperparameters)
         if not isinstance(action_space, spaces.Discrete):
-            raise ConfigError("action_space", action_space, "a Discrete space")
+            raise NotApplicableError("action_space", action_space, "a Discrete space")
         self.mdp: FiniteMDP | None = None
         self.values: np.ndarray | None = None
         self.action_values: np.ndarray | None = None

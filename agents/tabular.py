@@ -44,6 +44,7 @@ from gymnasium.vector import VectorEnv
 from needbench.agents.base import (
     Agent,
     Logger,
+    NotApplicableError,
     as_vector_env,
     check_seed,
     check_total_steps,
@@ -152,8 +153,8 @@ class StateIndexer:
             self.kind = "bins"
             self._init_bins(space, hp, internal_dimensions)
         else:
-            raise ConfigError("observation_space", space,
-                              "a Discrete, MultiDiscrete or Box space (for Dict tasks use "
+            raise NotApplicableError("observation_space", space,
+                                     "a Discrete, MultiDiscrete or Box space (for Dict tasks use "
                               "observation='flat')")
         if self.kind == "radix":
             self.strides = _strides(self.radix)
@@ -312,7 +313,7 @@ class TabularQAgent(Agent):
                  **hyperparameters: Any):
         super().__init__(observation_space, action_space, **hyperparameters)
         if not isinstance(action_space, spaces.Discrete):
-            raise ConfigError("action_space", action_space, "a Discrete space")
+            raise NotApplicableError("action_space", action_space, "a Discrete space")
         self.num_actions = int(action_space.n)
         self.q: np.ndarray | None = None
         self.indexer: StateIndexer | None = None
