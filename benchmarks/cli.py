@@ -1,0 +1,615 @@
+"""The ``needbench`` command line: list, describe, run, results, watch.
+
+Exit codes: 0 success; 1 some jobs of a run failed (their tracebacks are in
+the store); 2 bad input (unknown task, agent or suite, an invalid suite file,
+a bad option), printed as one message without a traceback; 130 interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import importlib
+import importlib.resources
+import io
+import json
+import math
+import os
+import sys
+import time
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from importlib.metadata import PackageNotFoundError, version
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from needbench.envs.errors import ConfigError
+
+#: File names inside a run's output folder.
+STORE_NAME = "results.sqlite3"
+CSV_NAME = "results.csv"
+TENSORBOARD_NAME = "tensorboard"
+
+#: The results table: (metric key of a run summary, column title, higher is better).
+TABLE_METRICS = (
+    ("return", "return", True),
+    ("discounted_drive", "discounted drive", False),
+    ("time_in_band", "time in band", True),
+    ("survival", "survival", True),
+)
+
+#: Bootstrap resamples behind each confidence interval of the results table.
+TABLE_REPETITIONS = 2000
+#: Seed of the bootstrap, so the same store always prints the same table.
+TABLE_SEED = 0
+
+
+def package_version() -> str:
+    try:
+        return version("needbench")
+    except PackageNotFoundError:  # running from a checkout that is not installed
+        return "0+unknown"
+
+
+def _print_error(error: BaseException) -> None:
+    print(f"needbench: error: {error}", file=sys.stderr)
+
+
+# ----------------------------------------------------------------------------
+# Names: tasks and built-in suites
+# ----------------------------------------------------------------------------
+
+def task_ids() -> tuple[str, ...]:
+    import needbench.envs
+
+    return needbench.envs.TASK_IDS
+
+
+def resolve_task(name: str) -> str:
+    """A registered task id from an id (``needbench/Menu-v0``) or a short name (``Menu``)."""
+    ids = task_ids()
+    if name in ids:
+        return name
+    short = {task_id.split("/", 1)[-1].rsplit("-v", 1)[0].lower(): task_id for task_id in ids}
+    if name.lower() in short:
+        return short[name.lower()]
+    import difflib
+
+    near = difflib.get_close_matches(name, list(ids) + sorted(short), n=1)
+    hint = f" (did you mean {near[0]!r}?)" if near else ""
+    raise ConfigError("task", name, "a registered task id or short name: " + ", ".join(ids) + hint)
+
+
+def builtin_suites() -> dict[str, Path]:
+    """Built-in suite names and their files."""
+    folder = importlib.resources.files("needbench.benchmarks.suites")
+    return {Path(entry.name).stem: Path(str(entry)) for entry in folder.iterdir()
+            if entry.name.endswith(".toml")}
+
+
+def resolve_suite(name: str) -> Path:
+    """A suite file from a path or a built-in suite name."""
+    from needbench.benchmarks.spec import SuiteError
+
+    path = Path(name)
+    if path.is_file():
+        return path
+    suites = builtin_suites()
+    if name in suites:
+        return suites[name]
+    import difflib
+
+    near = difflib.get_close_matches(name, sorted(suites), n=1)
+    raise SuiteError(name, "suite", name, "an existing suite file or a built-in suite: "
+                     + ", ".join(sorted(suites)), near[0] if near else None)
+
+
+def load_suite(name: str):
+    """Parse and validate a suite, checking task ids and agent names against the registries."""
+    from needbench.agents.registry import AGENTS
+    from needbench.benchmarks.spec import parse_suite
+
+    return parse_suite(resolve_suite(name), known_tasks=task_ids(), known_agents=list(AGENTS))
+
+
+def _first_line(text: str | None) -> str:
+    lines = [line.strip() for line in (text or "").strip().splitlines()]
+    return lines[0] if lines else ""
+
+
+def _env_class(task_id: str) -> type:
+    import gymnasium as gym
+
+    module_name, _, class_name = str(gym.spec(task_id).entry_point).partition(":")
+    return getattr(importlib.import_module(module_name), class_name)
+
+
+# ----------------------------------------------------------------------------
+# The results table
+# ----------------------------------------------------------------------------
+
+@dataclass
+class Cell:
+    """One row of the results table: the runs of one agent on one task at one sweep point.
+
+    ``estimates[metric]`` is (IQM, low, high) of the runs' mean scores, with
+    the 95% stratified bootstrap interval of benchmarks.stats; None when no
+    run has a finite value.
+    """
+
+    suite: str
+    task_id: str
+    agent: str
+    sweep: str
+    runs: int
+    failed: int
+    estimates: dict[str, tuple[float, float, float] | None]
+
+
+def _estimate(values: list[float], higher_is_better: bool) -> tuple[float, float, float] | None:
+    from needbench.benchmarks.stats import bootstrap_ci, interquartile_mean
+
+    finite = [value for value in values if value is not None and math.isfinite(value)]
+    if not finite:
+        return None
+    sign = 1.0 if higher_is_better else -1.0
+    # The stats functions score higher-is-better; a cost is negated and turned back after.
+    estimate = bootstrap_ci(sign * np.asarray(finite), interquartile_mean,
+                            np.random.default_rng(TABLE_SEED), confidence=0.95,
+                            repetitions=TABLE_REPETITIONS)
+    bounds = sorted((sign * estimate.low, sign * estimate.high))
+    return sign * estimate.value, bounds[0], bounds[1]
+
+
+def result_cells(store, hashes: Iterable[str] | None = None) -> list[Cell]:
+    """The results table of a store (only runs with the given hashes, when given)."""
+    wanted = set(hashes) if hashes is not None else None
+    groups: dict[tuple[str, str, str, str], list[dict[str, Any]]] = {}
+    for row in store.run_summaries():
+        if wanted is not None and row["hash"] not in wanted:
+            continue
+        key = (row["suite"], row["task_id"], row["agent"], row["sweep"])
+        groups.setdefault(key, []).append(row)
+    cells = []
+    for (suite, task_id, agent, sweep), rows in sorted(groups.items()):
+        done = [row for row in rows if row["status"] == "done"]
+        estimates = {key: _estimate([row.get(key) for row in done], higher)
+                     for key, _, higher in TABLE_METRICS}
+        cells.append(Cell(suite, task_id, agent, sweep, len(done), len(rows) - len(done),
+                          estimates))
+    return cells
+
+
+def _sweep_text(sweep: str) -> str:
+    point = json.loads(sweep) if sweep else {}
+    return " ".join(f"{key}={json.dumps(value)}" for key, value in sorted(point.items()))
+
+
+def _number(value: float) -> str:
+    return f"{value:.3g}"
+
+
+def format_table(cells: Sequence[Cell]) -> str:
+    """The results table as aligned text: one row per cell, IQM [95% CI] per metric."""
+    if not cells:
+        return "no runs recorded"
+    show_suite = len({cell.suite for cell in cells}) > 1
+    show_sweep = any(cell.sweep not in ("", "{}") for cell in cells)
+    header = (["suite"] if show_suite else []) + ["task", "agent"] \
+        + (["sweep"] if show_sweep else []) + ["runs", "failed"] \
+        + [f"{title} IQM [95% CI]" for _, title, _ in TABLE_METRICS]
+    rows = []
+    for cell in cells:
+        row = ([cell.suite] if show_suite else []) + [cell.task_id.removeprefix("needbench/"),
+                                                      cell.agent]
+        row += [_sweep_text(cell.sweep)] if show_sweep else []
+        row += [str(cell.runs), str(cell.failed)]
+        for key, _, _ in TABLE_METRICS:
+            estimate = cell.estimates[key]
+            row.append("n/a" if estimate is None else
+                       f"{_number(estimate[0])} [{_number(estimate[1])}, {_number(estimate[2])}]")
+        rows.append(row)
+    widths = [max(len(line[i]) for line in [header, *rows]) for i in range(len(header))]
+    lines = ["  ".join(text.ljust(width) for text, width in zip(line, widths, strict=True))
+             .rstrip() for line in [header, *rows]]
+    lines.insert(1, "  ".join("-" * width for width in widths))
+    lines.append("(discounted drive: lower is better; the others: higher is better. "
+                 "IQM over runs, each run the mean of its evaluation episodes.)")
+    return "\n".join(lines)
+
+
+def _cell_record(cell: Cell) -> dict[str, Any]:
+    record: dict[str, Any] = {"suite": cell.suite, "task": cell.task_id, "agent": cell.agent,
+                              "sweep": json.loads(cell.sweep) if cell.sweep else {},
+                              "runs": cell.runs, "failed": cell.failed}
+    for key, _, higher in TABLE_METRICS:
+        estimate = cell.estimates[key]
+        record[key] = None if estimate is None else {
+            "iqm": estimate[0], "low": estimate[1], "high": estimate[2],
+            "confidence": 0.95, "higher_is_better": higher}
+    return record
+
+
+def table_json(cells: Sequence[Cell]) -> str:
+    return json.dumps([_cell_record(cell) for cell in cells], indent=2)
+
+
+def table_csv(cells: Sequence[Cell]) -> str:
+    columns = ["suite", "task", "agent", "sweep", "runs", "failed"]
+    for key, _, _ in TABLE_METRICS:
+        columns += [f"{key}_iqm", f"{key}_low", f"{key}_high"]
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(columns)
+    for cell in cells:
+        row: list[Any] = [cell.suite, cell.task_id, cell.agent, _sweep_text(cell.sweep),
+                          cell.runs, cell.failed]
+        for key, _, _ in TABLE_METRICS:
+            estimate = cell.estimates[key]
+            row += ["", "", ""] if estimate is None else list(estimate)
+        writer.writerow(row)
+    return buffer.getvalue()
+
+
+def _open_store(location: str):
+    """The store in a run's output folder, or a store file itself; never creates one."""
+    from needbench.benchmarks.store import Store
+
+    path = Path(location)
+    if path.is_dir():
+        path = path / STORE_NAME
+    if not path.is_file():
+        raise ConfigError("results", location, f"a run's output folder (holding {STORE_NAME}) "
+                          "or a results store file")
+    return Store(path)
+
+
+# ----------------------------------------------------------------------------
+# Commands
+# ----------------------------------------------------------------------------
+
+def command_list(args: argparse.Namespace) -> int:
+    from needbench.agents.registry import AGENTS
+
+    print("Tasks")
+    ids = task_ids()
+    width = max(len(task_id) for task_id in ids)
+    for task_id in ids:
+        print(f"  {task_id:<{width}}  {_first_line(_env_class(task_id).__doc__)}")
+    print("\nAgents")
+    width = max(len(name) for name in AGENTS)
+    for name in AGENTS:
+        try:
+            about = _first_line(AGENTS[name].__doc__)
+        except ImportError as error:
+            about = f"(not available: {error})"
+        print(f"  {name:<{width}}  {about}")
+    from needbench.benchmarks.spec import expand
+
+    print("\nSuites")
+    suites = builtin_suites()
+    width = max((len(name) for name in suites), default=0)
+    for name in sorted(suites):
+        try:
+            suite = load_suite(name)
+            about = f"{suite.description} ({len(expand(suite))} jobs)"
+        except ConfigError as error:
+            about = f"(invalid here: {error})"
+        print(f"  {name:<{width}}  {about}")
+    return 0
+
+
+def _format_value(value: Any, limit: int = 70) -> str:
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit - 3] + "..."
+
+
+def _space_text(space: Any) -> str:
+    from gymnasium import spaces
+
+    if isinstance(space, spaces.Box) and int(np.prod(space.shape)) > 8:
+        return f"Box(shape={space.shape}, dtype={space.dtype})"
+    return str(space)
+
+
+def command_describe(args: argparse.Namespace) -> int:
+    import dataclasses
+
+    import gymnasium as gym
+
+    from needbench.envs.task import TaskConfig
+
+    task_id = resolve_task(args.task)
+    env_class = _env_class(task_id)
+    env = gym.make(task_id)
+    try:
+        core = env.unwrapped.core
+        physiology = core.physiology
+        config = core.config
+        print(task_id)
+        print(f"  {_first_line(env_class.__doc__)}")
+        print(f"\nobservation space: {_space_text(env.observation_space)}")
+        internal = physiology.num_needs if config.interoception else 0
+        features = core.world.feature_names
+        if internal:
+            print(f"  entries 0..{internal - 1}: deviations (h - h*) / band of "
+                  + ", ".join(core.need_names) + ", in comfort-band units")
+        if features:
+            shown = ", ".join(features[:8]) + (", ..." if len(features) > 8 else "")
+            print(f"  then {len(features)} world features: {shown}")
+        print(f"action space: {env.action_space}")
+        print(f"time limit: {core.max_steps} steps; on lethal levels: {config.on_lethal}")
+        print(f"drive: {config.drive} {dict(config.drive_params) or ''}".rstrip())
+        print(f"reward: {config.reward} (drive_weight {config.drive_weight}, "
+              f"task_weight {config.task_weight})")
+        print(f"\nneeds ({config.preset} preset)")
+        header = ("need", "unit", "set point", "band", "lethal low", "lethal high", "initial")
+        rows = [header]
+        for need in physiology.needs:
+            rows.append((need.name, need.unit, f"{need.set_point:g}", f"{need.band:g}",
+                         f"{need.lethal_low:g}", f"{need.lethal_high:g}",
+                         f"[{need.initial_low:g}, {need.initial_high:g}]"))
+        widths = [max(len(row[i]) for row in rows) for i in range(len(header))]
+        for row in rows:
+            print("  " + "  ".join(text.ljust(width) for text, width in
+                                   zip(row, widths, strict=True)).rstrip())
+        defaults = {f.name: (f.default if f.default is not dataclasses.MISSING else
+                             f.default_factory())
+                    for f in dataclasses.fields(TaskConfig)}
+        defaults.update(core.world.parameters)
+        defaults.update(getattr(env_class, "defaults", {}))
+        print("\ndefaults (keyword arguments of gymnasium.make / [task.kwargs])")
+        width = max(len(key) for key in defaults)
+        for key, value in defaults.items():
+            print(f"  {key:<{width}}  {_format_value(value)}")
+    finally:
+        env.close()
+    return 0
+
+
+def command_run(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.runner import (
+        RunSettings,
+        check_run_options,
+        git_revision,
+        run_suite,
+    )
+    from needbench.benchmarks.store import Store
+    from needbench.benchmarks.tensorboard import NO_WRITER_MESSAGE, writer_backend
+
+    suite = load_suite(args.suite)
+    # Every option is checked before the output folder is made.
+    check_run_options(args.workers, args.backend, args.address, args.max_retries)
+    out = Path(args.out) if args.out is not None else Path("results") / suite.name
+    tensorboard = Path(args.tensorboard) if args.tensorboard else out / TENSORBOARD_NAME
+    if writer_backend() is None:
+        print(f"needbench: {NO_WRITER_MESSAGE}", file=sys.stderr)
+        tensorboard = None
+    settings = RunSettings(tensorboard_root=None if tensorboard is None else str(tensorboard),
+                           keep_traces=args.traces, git_revision=git_revision())
+    show_progress = not args.quiet and sys.stdout.isatty()
+    with Store(out / STORE_NAME) as store:
+        summary = run_suite(suite, store, workers=args.workers, backend=args.backend,
+                            address=args.address, settings=settings,
+                            max_retries=args.max_retries, progress=show_progress)
+        hashes = [job.hash for job in summary.jobs]
+        failed = [run for run in store.runs(suite=suite.name, status="failed")
+                  if run["hash"] in set(hashes)]
+        store.export_csv(out / CSV_NAME)
+        if not args.quiet:
+            print(f"suite {suite.name}: {len(summary.jobs)} jobs, {len(summary.done)} done now, "
+                  f"{len(summary.skipped)} already done, {len(summary.failed)} failed now, "
+                  f"{len(summary.not_applicable)} not applicable "
+                  f"({summary.wall_seconds:.1f} s)")
+            reasons: dict[tuple[str, str], str] = {}
+            for job, reason in summary.not_applicable:
+                reasons.setdefault((job.task_id, job.agent_name), reason)
+            for (task_id, agent), reason in reasons.items():
+                print(f"not applicable, not run: {agent} on {task_id}: {reason}")
+        print(format_table(result_cells(store, hashes)))
+    for run in failed:
+        last = (run["error"] or "").strip().splitlines()[-1:] or [""]
+        print(f"failed: {run['task_id']} {run['agent']} seed={run['seed']}: {last[0]}",
+              file=sys.stderr)
+    if not args.quiet:
+        print(f"results: {out / STORE_NAME}, {out / CSV_NAME}")
+        if tensorboard is not None:
+            print(f"tensorboard: tensorboard --logdir {tensorboard}")
+    return 1 if failed else 0
+
+
+def command_results(args: argparse.Namespace) -> int:
+    with _open_store(args.location) as store:
+        cells = result_cells(store)
+    if args.json:
+        print(table_json(cells))
+    elif args.csv:
+        sys.stdout.write(table_csv(cells))
+    else:
+        print(format_table(cells))
+    return 0
+
+
+def command_watch(args: argparse.Namespace) -> int:
+    import gymnasium as gym
+
+    from needbench.agents.registry import AGENTS, check_agent_name, make_agent
+    from needbench.benchmarks.evaluate import evaluation_seeds, rollout_single
+    from needbench.benchmarks.metrics import episode_metrics
+    from needbench.benchmarks.runner import make_learning_env
+
+    task_id = resolve_task(args.task)
+    name = check_agent_name(args.agent)
+    kwargs = {} if args.steps is None else {"max_steps": args.steps}
+    learning_env = make_learning_env(task_id, {}, AGENTS[name])
+    try:
+        if isinstance(learning_env, gym.vector.VectorEnv):
+            spaces = learning_env.single_observation_space, learning_env.single_action_space
+        else:
+            spaces = learning_env.observation_space, learning_env.action_space
+        agent = make_agent(name, *spaces)
+        if args.learn_steps:
+            print(f"{name} learns for {args.learn_steps} steps first (a short budget; "
+                  "--learn-steps N changes it; agents that do not learn ignore it)")
+        else:
+            print(f"{name} acts without learning (--learn-steps 0)")
+        agent.learn(learning_env, args.learn_steps, args.seed, None)
+    finally:
+        learning_env.close()
+    interactive = sys.stdout.isatty()
+    delay = 1.0 / args.fps if interactive and args.fps > 0 else 0.0
+    env = gym.make(task_id, render_mode="ansi", **kwargs)
+
+    def show(shown: gym.Env) -> None:
+        frame = shown.render()
+        if interactive:
+            sys.stdout.write("\x1b[H\x1b[2J")
+        sys.stdout.write(f"{frame}\n\n")
+        sys.stdout.flush()
+        if delay:
+            time.sleep(delay)
+
+    try:
+        trace = rollout_single(env, agent, evaluation_seeds(args.seed, 1)[0], on_step=show)
+        need_names = list(env.unwrapped.core.need_names)
+    finally:
+        env.close()
+    metrics = episode_metrics(trace, 0.99, need_names)
+    ending = "terminated (a need left its viable range)" if trace["terminated"] else "truncated"
+    print(f"episode of {int(metrics['length'])} steps, {ending}: return {metrics['return']:.3g}, "
+          f"discounted drive {metrics['discounted_drive']:.3g} (gamma 0.99), "
+          f"time in band {metrics['time_in_band']:.1%}")
+    return 0
+
+
+# ----------------------------------------------------------------------------
+# The parser
+# ----------------------------------------------------------------------------
+
+def _positive(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"{value} is not >= 1")
+    return value
+
+
+def _non_negative(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"{value} is not >= 0")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="needbench",
+        description="Benchmark agents that keep several internal needs near their set points.",
+        epilog="Exit codes: 0 ok, 1 some jobs failed, 2 bad input, 130 interrupted.",
+    )
+    parser.add_argument("--version", action="version", version=f"needbench {package_version()}")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    listing = commands.add_parser("list", help="list the tasks, agents and built-in suites",
+                                  description="List the registered tasks and agents and the "
+                                  "built-in suites.")
+    listing.set_defaults(handler=command_list)
+
+    describe = commands.add_parser(
+        "describe", help="show a task's spaces, needs and defaults",
+        description="Show a task's observation and action spaces, its needs (set points, "
+        "comfort bands, lethal bounds, units) and its default keyword arguments.")
+    describe.add_argument("task", metavar="TASK", help="task id or short name, e.g. Menu")
+    describe.set_defaults(handler=command_describe)
+
+    run = commands.add_parser(
+        "run", help="run a suite (resumes: jobs already done are skipped)",
+        description="Run every job of a suite, record each in the results store as it "
+        "finishes, then print the results table and write results.csv. Rerunning with "
+        "the same --out skips the jobs already done.")
+    run.add_argument("suite", metavar="SUITE|FILE",
+                     help="a built-in suite name (see `needbench list`) or a suite TOML file")
+    run.add_argument("--out", metavar="DIR", help="output folder (default: results/<suite name>)"
+                     f"; holds {STORE_NAME}, {CSV_NAME} and {TENSORBOARD_NAME}/")
+    run.add_argument("--workers", metavar="N", type=_positive, default=None,
+                     help="worker processes, or CPUs of a new local Ray instance "
+                     "(default: the number of CPUs)")
+    run.add_argument("--backend", choices=("local", "ray"), default="local",
+                     help="local process pool (default) or Ray remote tasks")
+    run.add_argument("--address", metavar="ADDR", default=None,
+                     help="Ray cluster address (with --backend ray; default: a new local "
+                     "instance)")
+    run.add_argument("--tensorboard", metavar="DIR", default=None,
+                     help=f"folder of the TensorBoard event files (default: <out>/"
+                     f"{TENSORBOARD_NAME}), one sub-folder per job")
+    run.add_argument("--traces", metavar="N", type=_non_negative, default=1,
+                     help="evaluation episodes per job whose full trace is stored (default: 1)")
+    run.add_argument("--max-retries", metavar="N", type=_non_negative, default=2,
+                     help="reruns of a job whose worker process died or was lost (default: 2)")
+    run.add_argument("--quiet", action="store_true",
+                     help="no progress line and no summary lines, only the results table "
+                     "(progress is also off when stdout is not a terminal)")
+    run.set_defaults(handler=command_run)
+
+    results = commands.add_parser(
+        "results", help="print the results table of a store",
+        description="Print the results table (IQM and 95% bootstrap CI of return, "
+        "discounted drive, time in band and survival per agent and task) of a results store.")
+    results.add_argument("location", metavar="DIR",
+                         help=f"a run's output folder, or a {STORE_NAME} file")
+    output = results.add_mutually_exclusive_group()
+    output.add_argument("--json", action="store_true", help="print the table as JSON")
+    output.add_argument("--csv", action="store_true", help="print the table as CSV")
+    results.set_defaults(handler=command_results)
+
+    watch = commands.add_parser(
+        "watch", help="show an episode of an agent in the terminal",
+        description="Let an agent learn briefly, then show one episode frame by frame with "
+        "the task's text rendering, and its return, discounted drive and time in band.")
+    watch.add_argument("task", metavar="TASK", help="task id or short name, e.g. Menu")
+    watch.add_argument("--agent", metavar="NAME", required=True, help="registered agent name")
+    watch.add_argument("--steps", metavar="N", type=_positive, default=None,
+                       help="time limit of the episode shown (default: the task's)")
+    watch.add_argument("--seed", metavar="S", type=_non_negative, default=0,
+                       help="seed of learning and of the episode (default: 0)")
+    watch.add_argument("--learn-steps", metavar="N", type=_non_negative, default=5000,
+                       help="learning budget before the episode, env steps (default: 5000)")
+    watch.add_argument("--fps", metavar="F", type=float, default=8.0,
+                       help="frames per second on a terminal; 0 for no pause (default: 8)")
+    watch.set_defaults(handler=command_watch)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exit_request:  # --help, --version, or a usage error (code 2)
+        return int(exit_request.code or 0)
+    if args.command is None:
+        parser.print_help()
+        return 0
+    try:
+        return args.handler(args)
+    except ConfigError as error:
+        _print_error(error)
+        return 2
+    except KeyboardInterrupt:
+        print("\nneedbench: interrupted; jobs already recorded are kept, rerun to resume",
+              file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        # The reader of our output went away (e.g. `| head`); nothing left to say.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

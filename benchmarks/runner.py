@@ -1,0 +1,612 @@
+"""The runner: a suite's jobs, run in a local process pool or on Ray, recorded in the store.
+
+One job (:func:`run_job`) makes the task, makes the agent (``make_agent``),
+lets it learn for its budget with a :class:`~needbench.benchmarks.tensorboard.RunLogger`,
+evaluates it (:func:`needbench.benchmarks.evaluate.evaluate`), scores every
+evaluation episode with :mod:`needbench.benchmarks.metrics` and returns a
+:class:`~needbench.benchmarks.store.JobResult`. A job that raises comes back
+as a failed result carrying its traceback; the sweep goes on.
+
+Not every agent applies to every task. When building the agent for the
+task's spaces, or its ``learn``, raises a ConfigError about the task itself
+(path ``action_space``, ``observation_space``, ``env``, ``task`` or
+``needs``: e.g. tabular Q-learning on continuous actions, a planner on a task
+without a finite model), the job comes back :class:`NotApplicable`: the
+driver lists it and does not record it. Any other error is the job's failure
+and is recorded as such, with its traceback.
+
+The learning env: agents whose hyperparameters have an ``n_envs`` field (the
+Stable-Baselines3 adapters) make their own env copies and get a single env;
+every other agent learns on the task's native vector env with
+:data:`LEARNING_COPIES` copies (``total_steps`` counts steps over all copies).
+
+:func:`run_suite` is the driver. It skips jobs whose hash the store already
+holds as done (so a rerun resumes an interrupted sweep), runs the rest with
+the chosen backend, and writes each result the moment it arrives, one
+transaction per job: the driver is the store's only writer.
+
+Backends:
+
+* ``local`` (default): ``concurrent.futures.ProcessPoolExecutor`` with the
+  ``spawn`` start method, one worker per CPU unless told otherwise, each
+  limited to one BLAS/torch thread. If a worker process dies, the jobs it
+  took down are run again in a fresh pool, at most ``max_retries`` times each.
+* ``ray``: the same job function as Ray remote tasks (``num_cpus=1`` each,
+  ``max_retries`` for lost workers), on the cluster at ``address`` or on a
+  local instance with ``num_cpus = workers``; a Ray session opened elsewhere
+  in the process is used as it is. On a multi-node cluster the TensorBoard
+  folder must be on a file system every node shares, and needbench must be
+  installed on every node.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import importlib
+import multiprocessing
+import os
+import shutil
+import socket
+import subprocess
+import sys
+import time
+import traceback
+from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, TextIO
+
+import gymnasium as gym
+
+from needbench.agents.base import NotApplicableError
+from needbench.benchmarks.evaluate import MODES, evaluate, evaluation_metrics
+from needbench.benchmarks.metrics import summarise
+from needbench.benchmarks.spec import Job, Suite, expand
+from needbench.benchmarks.store import JobResult, Store
+from needbench.benchmarks.tensorboard import RunLogger, run_folder_name
+from needbench.envs.errors import ConfigError, check_choice
+
+BACKENDS = ("local", "ray")
+
+#: Copies of the task's native vector env that agents without ``n_envs`` learn on.
+LEARNING_COPIES = 8
+
+#: Environment variables that cap the threads of BLAS and OpenMP libraries.
+_THREAD_VARIABLES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
+
+JobFunction = Callable[[dict[str, Any], str, "RunSettings"], "JobResult | NotApplicable"]
+ResultSink = Callable[["JobResult | NotApplicable"], None]
+
+
+@dataclass(frozen=True)
+class RunSettings:
+    """How every job of a run is carried out (the same for all jobs; not part of a job's hash).
+
+    Attributes:
+        tensorboard_root: folder under which each job writes its event files
+            (one sub-folder per job), or None for no event files.
+        keep_traces: evaluation episodes per job whose full trace is stored.
+        evaluation_mode: 'vector', 'sync' or 'single' (see benchmarks.evaluate).
+        git_revision: commit of the checkout, recorded with every result.
+    """
+
+    tensorboard_root: str | None = None
+    keep_traces: int = 1
+    evaluation_mode: str = "vector"
+    git_revision: str | None = None
+
+    def __post_init__(self) -> None:
+        if isinstance(self.keep_traces, bool) or not isinstance(self.keep_traces, int) \
+                or self.keep_traces < 0:
+            raise ConfigError("keep_traces", self.keep_traces, "a whole number >= 0")
+        check_choice("evaluation_mode", self.evaluation_mode, MODES)
+
+
+# ----------------------------------------------------------------------------
+# One job (runs in a worker process)
+# ----------------------------------------------------------------------------
+
+def limit_threads() -> None:
+    """One BLAS/OpenMP/torch thread in this process, so W workers use W cores.
+
+    Runs as the pool's worker initialiser, at the start of every job (Ray
+    tasks have no initialiser) and again once the agent is built. torch reads
+    ``OMP_NUM_THREADS`` when it is first imported, so a deep agent that
+    imports it later still starts with one thread; a torch already loaded is
+    set with ``torch.set_num_threads(1)``. torch is never imported here just
+    for this: it takes seconds, and NumPy agents do not need it.
+    """
+    for variable in _THREAD_VARIABLES:
+        os.environ[variable] = "1"
+    torch = sys.modules.get("torch")
+    if torch is not None:
+        torch.set_num_threads(1)
+
+
+def make_learning_env(task_id: str, task_kwargs: dict[str, Any],
+                      agent_class: type) -> gym.Env | gym.vector.VectorEnv:
+    """The env an agent learns on (see the module docstring)."""
+    fields = {f.name for f in dataclasses.fields(agent_class.Hyperparameters)}
+    if "n_envs" in fields:
+        return gym.make(task_id, **task_kwargs)
+    return gym.make_vec(task_id, num_envs=LEARNING_COPIES, vectorization_mode="vector_entry_point",
+                        **task_kwargs)
+
+
+def _spaces(env: gym.Env | gym.vector.VectorEnv):
+    if isinstance(env, gym.vector.VectorEnv):
+        return env.single_observation_space, env.single_action_space
+    return env.observation_space, env.action_space
+
+
+@dataclass(frozen=True)
+class NotApplicable:
+    """What a job returns when its agent does not apply to its task (not stored).
+
+    Attributes:
+        hash: the job's hash.
+        config: the job's config.
+        reason: the agent's ConfigError message.
+    """
+
+    hash: str
+    config: dict[str, Any]
+    reason: str
+
+
+def run_job(config: dict[str, Any], job_hash: str,
+            settings: RunSettings) -> JobResult | NotApplicable:
+    """Learn, evaluate and score one job; never raises for a failure of the job itself.
+
+    Args:
+        config: the job's resolved config (``benchmarks.spec.Job.config``).
+        job_hash: its hash (``Job.hash``).
+        settings: the run's settings.
+
+    Returns:
+        A 'done' JobResult with one metrics dict per evaluation episode, the
+        learning curves and the first ``settings.keep_traces`` traces; a
+        'failed' one with the traceback (and the curves logged until then);
+        or :class:`NotApplicable` (module docstring).
+    """
+    import needbench.envs  # noqa: F401  (registers the tasks in this process)
+    from needbench.agents.registry import AGENTS, make_agent
+
+    limit_threads()
+    started = time.time()
+    clock = time.perf_counter()
+    logger: RunLogger | None = None
+    env = None
+    try:
+        task_id = config["task"]["id"]
+        task_kwargs = dict(config["task"]["kwargs"])
+        agent_config = config["agent"]
+        env = make_learning_env(task_id, task_kwargs, AGENTS[agent_config["name"]])
+        observation_space, action_space = _spaces(env)
+        try:
+            agent = make_agent(agent_config["name"], observation_space, action_space,
+                               **agent_config["hyperparameters"])
+        except NotApplicableError as rejection:
+            return NotApplicable(job_hash, config, str(rejection))
+        limit_threads()  # again: building a deep agent may have loaded torch
+        folder = None
+        if settings.tensorboard_root is not None:
+            folder = Path(settings.tensorboard_root) / run_folder_name(
+                Job(config).describe(), job_hash)
+        # Made after the agent, so that a deep agent's torch also writes the events.
+        logger = RunLogger(folder)
+        need_names = list(env.unwrapped.core.need_names)
+        try:
+            agent.learn(env, int(agent_config["total_steps"]), int(config["seed"]), logger)
+        except NotApplicableError as rejection:
+            if logger.tensorboard_dir is not None:
+                logger.close()
+                shutil.rmtree(logger.tensorboard_dir, ignore_errors=True)
+            return NotApplicable(job_hash, config, str(rejection))
+        env.close()
+        env = None
+        traces = evaluate(agent, task_id, task_kwargs, int(config["eval_episodes"]),
+                          int(config["seed"]), mode=settings.evaluation_mode)
+        episodes = evaluation_metrics(traces, float(config["gamma"]), need_names)
+        logger.log_evaluation(summarise(episodes), int(agent_config["total_steps"]))
+        status, error = "done", None
+    except Exception:
+        status, error, episodes, traces = "failed", traceback.format_exc(), [], []
+    finally:
+        if env is not None:
+            env.close()
+        if logger is not None:
+            logger.close()
+    return JobResult(hash=job_hash, config=config, status=status, started=started,
+                     finished=time.time(), wall_seconds=time.perf_counter() - clock,
+                     error=error, episodes=episodes,
+                     curves=list(logger.curves) if logger is not None else [],
+                     traces=traces[:settings.keep_traces], git_revision=settings.git_revision)
+
+
+def failed_result(job: Job, error: str, started: float, settings: RunSettings) -> JobResult:
+    """A failed result made by the driver, for a job whose worker never reported back."""
+    finished = time.time()
+    return JobResult(hash=job.hash, config=job.config, status="failed", started=started,
+                     finished=finished, wall_seconds=finished - started, error=error,
+                     git_revision=settings.git_revision)
+
+
+# ----------------------------------------------------------------------------
+# Backends (run in the driver)
+# ----------------------------------------------------------------------------
+
+@contextmanager
+def _single_threaded_children() -> Iterator[None]:
+    """Thread caps in the environment while worker processes are spawned.
+
+    A spawned worker loads NumPy's BLAS while unpickling its initialiser, before
+    the initialiser could set these, so they must already be in the
+    environment it inherits. The driver's own values are put back afterwards.
+    """
+    saved = {variable: os.environ.get(variable) for variable in _THREAD_VARIABLES}
+    os.environ.update({variable: "1" for variable in _THREAD_VARIABLES})
+    try:
+        yield
+    finally:
+        for variable, value in saved.items():
+            if value is None:
+                os.environ.pop(variable, None)
+            else:
+                os.environ[variable] = value
+
+
+#: In a pool worker: where the worker says which job it has started (set by the initialiser).
+_started_jobs: Any = None
+
+
+def _initialise_worker(started_jobs: Any) -> None:
+    """Pool worker initialiser: thread limits, and the queue for job-start notices."""
+    global _started_jobs
+    _started_jobs = started_jobs
+    limit_threads()
+
+
+def _run_reporting_start(job_function: JobFunction, config: dict[str, Any], job_hash: str,
+                         settings: RunSettings) -> JobResult | NotApplicable:
+    """Tell the driver that this job has started, then run it (in a pool worker)."""
+    _started_jobs.put(job_hash)
+    return job_function(config, job_hash, settings)
+
+
+def _drain(queue: Any, into: set[str]) -> None:
+    while not queue.empty():
+        into.add(queue.get())
+
+
+def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_retries: int,
+               job_function: JobFunction, on_result: ResultSink) -> None:
+    """Run jobs in a spawn-context process pool; survive worker deaths.
+
+    When a worker process dies (a crash in native code, the out-of-memory
+    killer), the pool is broken and every unfinished job is lost. The jobs
+    that had started (each worker reports a job's start on a queue) count one
+    death each; all lost jobs go to a fresh pool, and a job with more than
+    ``max_retries`` deaths is recorded as failed. Jobs that were still waiting
+    are never charged, so one crashing job cannot use up their retries.
+    """
+    context = multiprocessing.get_context("spawn")
+    deaths = {job.hash: 0 for job in jobs}
+    remaining = list(jobs)
+    while remaining:
+        lost: list[Job] = []
+        started: set[str] = set()
+        finished: set[str] = set()
+        submitted = time.time()
+        # A SimpleQueue writes at once (no feeder thread), so a notice is not lost
+        # when the worker dies right after sending it.
+        started_jobs = context.SimpleQueue()
+        with _single_threaded_children():
+            pool = ProcessPoolExecutor(max_workers=min(workers, len(remaining)),
+                                       mp_context=context, initializer=_initialise_worker,
+                                       initargs=(started_jobs,))
+            try:
+                futures = {pool.submit(_run_reporting_start, job_function, job.config, job.hash,
+                                       settings): job for job in remaining}
+                waiting = set(futures)
+                while waiting:
+                    # Wake up now and then to empty the notice pipe, which would
+                    # otherwise fill and block the workers.
+                    ready, waiting = wait(waiting, timeout=0.5, return_when=FIRST_COMPLETED)
+                    _drain(started_jobs, started)
+                    for future in ready:
+                        job = futures[future]
+                        try:
+                            result = future.result()
+                        except BrokenProcessPool:
+                            lost.append(job)
+                            continue
+                        except Exception:
+                            result = failed_result(job, traceback.format_exc(), submitted,
+                                                   settings)
+                        finished.add(job.hash)
+                        on_result(result)
+            except BaseException:
+                pool.shutdown(wait=False, cancel_futures=True)
+                raise
+            pool.shutdown(wait=True)
+        _drain(started_jobs, started)
+        started_jobs.close()
+        remaining = []
+        charged = [job for job in lost if job.hash in started and job.hash not in finished]
+        # Every round that loses jobs charges at least one, so the loop always ends.
+        for job in charged or lost:
+            deaths[job.hash] += 1
+        for job in lost:
+            if deaths[job.hash] > max_retries:
+                on_result(failed_result(
+                    job, f"the worker process running this job died {deaths[job.hash]} times "
+                    f"(max_retries = {max_retries}); it may have run out of memory or crashed "
+                    "in native code", submitted, settings))
+            else:
+                remaining.append(job)
+
+
+def import_ray() -> Any:
+    """The ``ray`` module, or ConfigError saying how to install it."""
+    try:
+        return importlib.import_module("ray")
+    except ImportError as error:
+        raise ConfigError("backend", "ray", "'local', or install Ray first (pip install "
+                          "'needbench[cluster]')") from error
+
+
+def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: str | None,
+             max_retries: int, job_function: JobFunction,
+             on_result: ResultSink) -> None:
+    ray = import_ray()
+    owned = not ray.is_initialized()
+    if owned:
+        if address:
+            try:
+                ray.init(address=address)
+            except Exception as error:  # Ray raises ConnectionError, RuntimeError...
+                raise ConfigError("address", address, "the address of a running Ray cluster, "
+                                  f"as `ray start --head` prints it ({error})") from error
+        else:
+            ray.init(num_cpus=workers, include_dashboard=False)
+    pending: list[Any] = []
+    try:
+        remote = ray.remote(num_cpus=1, max_retries=max_retries)(job_function)
+        submitted = time.time()
+        by_reference = {remote.remote(job.config, job.hash, settings): job for job in jobs}
+        pending = list(by_reference)
+        while pending:
+            ready, pending = ray.wait(pending, num_returns=1)
+            for reference in ready:
+                job = by_reference[reference]
+                try:
+                    result = ray.get(reference)
+                except Exception:
+                    result = failed_result(job, traceback.format_exc(), submitted, settings)
+                on_result(result)
+    except BaseException:
+        for reference in pending:
+            ray.cancel(reference, force=True)
+        raise
+    finally:
+        if owned:
+            ray.shutdown()
+
+
+# ----------------------------------------------------------------------------
+# Progress on the terminal
+# ----------------------------------------------------------------------------
+
+def _duration(seconds: float) -> str:
+    seconds = int(round(seconds))
+    hours, rest = divmod(seconds, 3600)
+    minutes, seconds = divmod(rest, 60)
+    return f"{hours}h{minutes:02d}m" if hours else f"{minutes}m{seconds:02d}s"
+
+
+class Progress:
+    """One self-rewriting status line: jobs done, failed, not applicable; elapsed time, ETA.
+
+    Silent unless ``enabled`` (the command line enables it when stdout is a
+    terminal and ``--quiet`` is not given). The ETA assumes the remaining jobs
+    take as long on average as the finished ones.
+    """
+
+    def __init__(self, total: int, skipped: int, enabled: bool, stream: TextIO | None = None):
+        self.total = total
+        self.skipped = skipped
+        self.enabled = enabled
+        self.stream = stream if stream is not None else sys.stdout
+        self.done = 0
+        self.failed = 0
+        self.not_applicable = 0
+        self.start = time.perf_counter()
+        self._shown = False
+
+    def begin(self) -> None:
+        """Show the line before the first job finishes."""
+        if self.enabled and self.total:
+            self._write(self.line(), final=False)
+
+    def update(self, result: JobResult | NotApplicable) -> None:
+        if isinstance(result, NotApplicable):
+            self.not_applicable += 1
+        elif result.status == "done":
+            self.done += 1
+        else:
+            self.failed += 1
+        if not self.enabled:
+            return
+        if isinstance(result, JobResult) and result.status == "failed":
+            last = (result.error or "").strip().splitlines()[-1:] or [""]
+            self._write(f"failed: {Job(result.config).describe()}: {last[0]}", final=True)
+        self._write(self.line(), final=False)
+
+    def line(self) -> str:
+        finished = self.done + self.failed + self.not_applicable
+        elapsed = time.perf_counter() - self.start
+        left = self.total - finished
+        eta = _duration(elapsed / finished * left) if finished else "?"
+        skipped = f", {self.skipped} already done" if self.skipped else ""
+        skipped += f", {self.not_applicable} not applicable" if self.not_applicable else ""
+        return (f"[{finished}/{self.total}] {self.done} done, {self.failed} failed{skipped}"
+                f" | elapsed {_duration(elapsed)} | ETA {eta}")
+
+    def _write(self, text: str, final: bool) -> None:
+        width = shutil.get_terminal_size((100, 20)).columns - 1
+        clear = "\r" + " " * width + "\r" if self._shown else ""
+        self.stream.write(clear + (text if final else text[:width]) + ("\n" if final else ""))
+        self.stream.flush()
+        self._shown = not final
+
+    def close(self) -> None:
+        if self.enabled and self._shown:
+            self.stream.write("\n")
+            self.stream.flush()
+            self._shown = False
+
+
+# ----------------------------------------------------------------------------
+# The driver
+# ----------------------------------------------------------------------------
+
+@dataclass
+class RunSummary:
+    """What a call of :func:`run_suite` did.
+
+    Attributes:
+        jobs: the suite's jobs (distinct hashes), in expansion order.
+        skipped: hashes already done in the store before this run.
+        not_applicable: jobs whose agent does not apply to their task, with
+            the reason (not recorded in the store; see :class:`NotApplicable`).
+        done: hashes that finished in this run.
+        failed: results of the jobs that failed in this run.
+        wall_seconds: duration of the call, seconds.
+    """
+
+    jobs: list[Job]
+    skipped: set[str] = field(default_factory=set)
+    not_applicable: list[tuple[Job, str]] = field(default_factory=list)
+    done: set[str] = field(default_factory=set)
+    failed: list[JobResult] = field(default_factory=list)
+    wall_seconds: float = 0.0
+
+    @property
+    def ok(self) -> bool:
+        return not self.failed
+
+
+def git_revision() -> str | None:
+    """The commit of the checkout this package runs from, if it is a git checkout."""
+    folder = Path(__file__).resolve().parent
+    try:
+        output = subprocess.run(["git", "-C", str(folder), "rev-parse", "HEAD"],
+                                capture_output=True, text=True, timeout=10, check=False)
+    except (OSError, subprocess.SubprocessError):
+        return None
+    revision = output.stdout.strip()
+    return revision if output.returncode == 0 and revision else None
+
+
+def _check_whole(path: str, value: Any, low: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < low:
+        raise ConfigError(path, value, f"a whole number >= {low}")
+    return value
+
+
+def check_run_options(workers: int | None, backend: str, address: str | None,
+                      max_retries: int) -> tuple[int, int]:
+    """(workers, max_retries) after checking every option of :func:`run_suite`.
+
+    Raises ConfigError for a bad value, an address without the Ray backend,
+    or the Ray backend without Ray installed.
+    """
+    check_choice("backend", backend, BACKENDS)
+    workers = _check_whole("workers", (os.cpu_count() or 1) if workers is None else workers, 1)
+    max_retries = _check_whole("max_retries", max_retries, 0)
+    if address is not None and backend != "ray":
+        raise ConfigError("address", address, "no address unless backend is 'ray'")
+    if backend == "ray":
+        import_ray()
+        if address is not None:
+            check_reachable(address)
+    return workers, max_retries
+
+
+def check_reachable(address: str) -> None:
+    """ConfigError unless a TCP connection to a ``host:port`` (or ``ray://host:port``)
+    Ray address opens within 5 s.
+
+    ``ray.init`` keeps retrying an address where nothing listens for minutes;
+    this says so at once. Addresses of other forms (``auto``) are left to Ray.
+    """
+    host, _, port = address.removeprefix("ray://").rpartition(":")
+    if not host or not port.isdigit():
+        return
+    try:
+        socket.create_connection((host, int(port)), timeout=5.0).close()
+    except OSError as error:
+        raise ConfigError("address", address, "the address of a running Ray cluster, as "
+                          f"`ray start --head` prints it (connecting failed: {error})") from error
+
+
+def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
+              backend: str = "local", address: str | None = None,
+              settings: RunSettings | None = None, max_retries: int = 2,
+              progress: Progress | bool = False,
+              job_function: JobFunction = run_job) -> RunSummary:
+    """Run every job of ``suite`` not yet done in ``store``, recording each as it finishes.
+
+    Args:
+        suite: a parsed suite (``benchmarks.spec.parse_suite``).
+        store: the results store; only this process writes to it.
+        workers: worker processes (local) or CPUs of a new local Ray
+            instance; default ``os.cpu_count()``.
+        backend: 'local' or 'ray'.
+        address: a Ray cluster to join (backend 'ray' only).
+        settings: see :class:`RunSettings`.
+        max_retries: runs of a job again after its worker process died or
+            was lost (not after the job raised).
+        progress: a :class:`Progress`, or True/False for one on stdout.
+        job_function: what runs one job (a module-level function with the
+            signature of :func:`run_job`, picklable by reference).
+
+    Raises:
+        ConfigError: for a bad argument, or backend 'ray' without Ray installed.
+    """
+    workers, max_retries = check_run_options(workers, backend, address, max_retries)
+    settings = settings if settings is not None else RunSettings()
+    clock = time.perf_counter()
+    jobs = list({job.hash: job for job in expand(suite)}.values())
+    completed = store.completed_hashes()
+    summary = RunSummary(jobs=jobs, skipped={job.hash for job in jobs if job.hash in completed})
+    pending = [job for job in jobs if job.hash not in completed]
+    if not isinstance(progress, Progress):
+        progress = Progress(len(pending), len(summary.skipped), bool(progress))
+
+    def record(result: JobResult | NotApplicable) -> None:
+        if isinstance(result, NotApplicable):
+            summary.not_applicable.append((Job(result.config), result.reason))
+            progress.update(result)
+            return
+        store.record_job(result)
+        if result.status == "done":
+            summary.done.add(result.hash)
+        else:
+            summary.failed.append(result)
+        progress.update(result)
+
+    progress.begin()
+    try:
+        if pending and backend == "local":
+            _run_local(pending, settings, workers, max_retries, job_function, record)
+        elif pending:
+            _run_ray(pending, settings, workers, address, max_retries, job_function, record)
+    finally:
+        progress.close()
+        summary.wall_seconds = time.perf_counter() - clock
+    return summary

@@ -1,0 +1,334 @@
+"""The command line end to end: run (local, Ray, killed and resumed), results, list, describe,
+watch, the built-in suites, and the exit codes."""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import gymnasium as gym
+import numpy as np
+import pytest
+from scipy import stats
+
+import needbench.envs
+from needbench.agents.registry import AGENTS
+from needbench.benchmarks.cli import builtin_suites, load_suite, main
+from needbench.benchmarks.runner import run_suite
+from needbench.benchmarks.spec import expand, parse_suite
+from needbench.benchmarks.store import Store
+
+# Menu with deterministic agents (tabular-q acts greedily; random is seeded by learn)
+# and Arena, where tabular-q does not apply (continuous actions) and is not run.
+SUITE = """
+[suite]
+name = "cli-test"
+seeds = [0, 1, 2, 3]
+eval_episodes = 3
+
+[[task]]
+id = "needbench/Menu-v0"
+[task.kwargs]
+max_steps = 40
+
+[[task]]
+id = "needbench/Arena-v0"
+[task.kwargs]
+max_steps = 30
+
+[[agent]]
+name = "random"
+total_steps = 0
+
+[[agent]]
+name = "tabular-q"
+total_steps = 800
+"""
+
+SUITE_JOBS = 12  # Menu x 2 agents x 4 seeds + Arena x random x 4 seeds
+
+
+def _write(folder: Path, name: str, text: str) -> Path:
+    path = folder / name
+    path.write_text(text)
+    return path
+
+
+def _episode_metrics(out: Path) -> dict[tuple[str, int], dict[str, float]]:
+    with Store(out / "results.sqlite3") as store:
+        return {(row["hash"], row["episode"]): row["metrics"] for row in store.episodes()}
+
+
+@pytest.fixture(scope="module")
+def local_run(tmp_path_factory):
+    """The suite run once through the command line with the local process pool."""
+    folder = tmp_path_factory.mktemp("local")
+    suite = _write(folder, "suite.toml", SUITE)
+    code = main(["run", str(suite), "--out", str(folder / "out"), "--workers", "2"])
+    return folder / "out", code
+
+
+def test_run_writes_store_csv_tensorboard_and_table(local_run, capsys):
+    out, code = local_run
+    assert code == 0
+    with Store(out / "results.sqlite3") as store:
+        runs = store.runs()
+        assert len(runs) == SUITE_JOBS and all(run["status"] == "done" for run in runs)
+        assert {(run["task_id"], run["agent"]) for run in runs} == {
+            ("needbench/Menu-v0", "random"), ("needbench/Menu-v0", "tabular-q"),
+            ("needbench/Arena-v0", "random")}
+    with (out / "results.csv").open(newline="") as handle:
+        rows = list(csv.DictReader(handle))
+    assert len(rows) == SUITE_JOBS and {"return", "discounted_drive", "survival"} <= set(rows[0])
+    assert len(list((out / "tensorboard").iterdir())) == SUITE_JOBS
+
+    assert main(["results", str(out), "--json"]) == 0
+    cells = json.loads(capsys.readouterr().out)
+    assert len(cells) == 3 and all(cell["runs"] == 4 for cell in cells)
+    # Source: scipy.stats.trim_mean(x, 0.25) is the interquartile mean; each run scores
+    # the mean (numpy) of its evaluation episodes.
+    by_run: dict[str, list[float]] = {}
+    for (run_hash, _), metrics in _episode_metrics(out).items():
+        by_run.setdefault(run_hash, []).append(metrics["return"])
+    with Store(out / "results.sqlite3") as store:
+        for cell in cells:
+            hashes = [run["hash"] for run in store.runs(task_id=cell["task"], agent=cell["agent"])]
+            scores = [np.mean(by_run[h]) for h in hashes]
+            assert cell["return"]["iqm"] == pytest.approx(stats.trim_mean(scores, 0.25))
+            assert cell["return"]["low"] <= cell["return"]["iqm"] <= cell["return"]["high"]
+            drive = cell["discounted_drive"]
+            assert drive["low"] <= drive["iqm"] <= drive["high"] and not drive["higher_is_better"]
+
+    assert main(["results", str(out)]) == 0
+    table = capsys.readouterr().out
+    assert "return IQM [95% CI]" in table and "time in band" in table and "Arena-v0" in table
+    assert main(["results", str(out), "--csv"]) == 0
+    lines = capsys.readouterr().out.strip().splitlines()
+    assert len(lines) == 4 and lines[0].startswith("suite,task,agent,sweep,runs,failed,return_iqm")
+
+
+def test_rerun_skips_what_is_done(local_run, capsys):
+    out, _ = local_run
+    before = {run["hash"]: run["finished"] for run in Store(out / "results.sqlite3").runs()}
+    suite = out.parent / "suite.toml"
+    assert main(["run", str(suite), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert f"0 done now, {SUITE_JOBS} already done" in printed
+    assert "not applicable, not run: tabular-q on needbench/Arena-v0" in printed
+    after = {run["hash"]: run["finished"] for run in Store(out / "results.sqlite3").runs()}
+    assert after == before
+
+
+@pytest.fixture(scope="module")
+def ray_session():
+    """One local Ray instance with 2 CPUs for the Ray tests of this module."""
+    ray = pytest.importorskip("ray")
+    ray.init(num_cpus=2, include_dashboard=False)
+    yield ray
+    ray.shutdown()
+
+
+@pytest.mark.ray
+def test_ray_backend_stores_the_same_metrics(local_run, ray_session, tmp_path):
+    out, _ = local_run
+    code = main(["run", str(out.parent / "suite.toml"), "--out", str(tmp_path / "ray"),
+                 "--backend", "ray", "--quiet"])
+    assert code == 0
+    local, remote = _episode_metrics(out), _episode_metrics(tmp_path / "ray")
+    assert len(local) == SUITE_JOBS * 3
+    assert remote == local
+
+
+CRASHING_MODULE = """
+import os
+
+from needbench.benchmarks.runner import run_job
+
+
+def crash_on_seed_1(config, job_hash, settings):
+    if config["seed"] == 1:
+        os._exit(17)  # the worker dies as if killed, without a Python exception
+    return run_job(config, job_hash, settings)
+"""
+
+
+@pytest.mark.ray
+def test_a_lost_ray_worker_fails_only_its_own_job(ray_session, tmp_path, monkeypatch):
+    (tmp_path / "crashing_ray_jobs.py").write_text(CRASHING_MODULE)
+    monkeypatch.syspath_prepend(str(tmp_path))
+    import crashing_ray_jobs
+
+    # Ray's workers cannot import the module from tmp_path: send the function itself.
+    ray_session.cloudpickle.register_pickle_by_value(crashing_ray_jobs)
+    suite = parse_suite(SUITE.replace("seeds = [0, 1, 2, 3]", "seeds = [0, 1, 2]")
+                        .replace('id = "needbench/Arena-v0"', 'id = "needbench/Gamble-v0"'))
+    try:
+        with Store(tmp_path / "results.sqlite3") as store:
+            summary = run_suite(suite, store, backend="ray", max_retries=1,
+                                job_function=crashing_ray_jobs.crash_on_seed_1)
+            status = {(run["task_id"], run["agent"], run["seed"]): run["status"]
+                      for run in store.runs()}
+    finally:
+        ray_session.cloudpickle.unregister_pickle_by_value(crashing_ray_jobs)
+        sys.modules.pop("crashing_ray_jobs", None)
+    assert len(status) == 12
+    assert all((state == "failed") == (seed == 1) for (_, _, seed), state in status.items())
+    assert len(summary.failed) == 4 and all("Traceback" in r.error for r in summary.failed)
+
+
+def test_a_failing_job_is_recorded_and_the_exit_code_is_1(tmp_path, capsys):
+    # 4096 bins per internal need make a table too large: tabular-q refuses it in learn().
+    suite = _write(tmp_path, "failing.toml", SUITE.replace(
+        "total_steps = 800", "total_steps = 800\n[agent.hyperparameters]\ninternal_bins = 4096"))
+    code = main(["run", str(suite), "--out", str(tmp_path / "out"), "--workers", "2"])
+    assert code == 1
+    assert "failed: needbench/Menu-v0 tabular-q seed=0" in capsys.readouterr().err
+    with Store(tmp_path / "out" / "results.sqlite3") as store:
+        failed = store.runs(status="failed")
+        assert len(failed) == 4 and all("state count" in run["error"] for run in failed)
+        assert len(store.runs(status="done")) == 8
+
+
+def _count_done(path: Path) -> int:
+    if not path.exists():
+        return 0
+    try:
+        with sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=1.0) as connection:
+            return connection.execute("SELECT count(*) FROM runs WHERE status = 'done'"
+                                      ).fetchone()[0]
+    except sqlite3.OperationalError:  # the schema is not written yet
+        return 0
+
+
+def test_a_killed_run_resumes_with_every_job_done_once(tmp_path):
+    # Six jobs of a few seconds each, one worker: the kill lands between jobs.
+    suite = _write(tmp_path, "long.toml", """
+[suite]
+name = "kill-test"
+seeds = [0, 1, 2, 3, 4, 5]
+eval_episodes = 4
+
+[[task]]
+id = "needbench/Menu-v0"
+
+[[agent]]
+name = "tabular-q"
+total_steps = 16000
+""")
+    out = tmp_path / "out"
+    store_path = out / "results.sqlite3"
+    command = [sys.executable, "-m", "needbench.benchmarks.cli", "run", str(suite), "--out",
+               str(out), "--workers", "1", "--quiet"]
+    # Its own process group, so that the kill takes the pool's workers too.
+    process = subprocess.Popen(command, start_new_session=True, stdout=subprocess.DEVNULL,
+                               stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 240
+    while _count_done(store_path) < 1:
+        assert process.poll() is None, process.stderr.read().decode()
+        assert time.monotonic() < deadline, "no job was recorded in time"
+        time.sleep(0.05)
+    os.killpg(process.pid, signal.SIGKILL)
+    process.wait(timeout=30)
+    process.stderr.close()
+    assert process.returncode == -signal.SIGKILL
+    recorded = _count_done(store_path)
+    assert 1 <= recorded < 6, "the run finished before the kill; make its jobs longer"
+    with Store(store_path) as store:
+        first = {run["hash"]: run["started"] for run in store.runs()}
+
+    assert main(["run", str(suite), "--out", str(out), "--quiet"]) == 0
+
+    jobs = expand(load_suite(str(suite)))
+    with sqlite3.connect(store_path) as connection:
+        assert connection.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+        rows = connection.execute("SELECT hash, status FROM runs").fetchall()
+        assert sorted(h for h, _ in rows) == sorted(job.hash for job in jobs)
+        assert all(status == "done" for _, status in rows)
+        episodes = connection.execute(
+            "SELECT run_hash, group_concat(episode) FROM "
+            "(SELECT run_hash, episode FROM episodes ORDER BY run_hash, episode) GROUP BY run_hash"
+        ).fetchall()
+        assert sorted(episodes) == sorted((job.hash, "0,1,2,3") for job in jobs)
+    with Store(store_path) as store:
+        again = {run["hash"]: run["started"] for run in store.runs()}
+    # The jobs recorded before the kill were not run a second time.
+    assert all(again[h] == started for h, started in first.items())
+
+
+def test_bad_input_exits_with_2_and_no_traceback(tmp_path, capsys, monkeypatch):
+    def error_of(arguments):
+        assert main(arguments) == 2
+        err = capsys.readouterr().err
+        assert "Traceback" not in err
+        return err
+
+    assert "did you mean 'quickstart'" in error_of(["run", "quickstrat"])
+    bad = _write(tmp_path, "bad.toml", SUITE.replace("eval_episodes = 3", "eval_episodes = 0"))
+    assert "suite.eval_episodes = 0" in error_of(["run", str(bad)])
+    typo = _write(tmp_path, "typo.toml", SUITE.replace('name = "tabular-q"', 'name = "tabular"'))
+    assert "agent[1].name" in error_of(["run", str(typo)])
+    assert "--workers" in error_of(["run", "quickstart", "--workers", "0"])
+    good = _write(tmp_path, "good.toml", SUITE)
+    assert "address" in error_of(["run", str(good), "--out", str(tmp_path / "o"),
+                                  "--address", "127.0.0.1:6379"])
+    monkeypatch.setitem(sys.modules, "ray", None)  # as if Ray were not installed
+    assert "pip install" in error_of(["run", str(good), "--out", str(tmp_path / "o"),
+                                      "--backend", "ray"])
+    assert "Nowhere" in error_of(["describe", "Nowhere"])
+    assert "nobody" in error_of(["watch", "Menu", "--agent", "nobody"])
+    assert "results" in error_of(["results", str(tmp_path / "empty")])
+    assert not (tmp_path / "o" / "results.sqlite3").exists()
+
+
+def test_version_and_help(capsys):
+    assert main(["--version"]) == 0
+    assert capsys.readouterr().out.startswith("needbench ")
+    assert main([]) == 0
+    printed = capsys.readouterr().out
+    assert all(verb in printed for verb in ("list", "describe", "run", "results", "watch"))
+
+
+def test_list_shows_every_task_agent_and_suite(capsys):
+    assert main(["list"]) == 0
+    printed = capsys.readouterr().out
+    for name in (*needbench.envs.TASK_IDS, *AGENTS, *builtin_suites()):
+        assert name in printed
+
+
+def test_describe_shows_the_needs_of_the_task(capsys):
+    assert main(["describe", "Menu"]) == 0
+    printed = capsys.readouterr().out
+    physiology = gym.make("needbench/Menu-v0").unwrapped.core.physiology
+    for need in physiology.needs:
+        line = next(line for line in printed.splitlines() if line.strip().startswith(need.name))
+        assert f"{need.set_point:g}" in line and f"{need.band:g}" in line and need.unit in line
+    assert "time limit: 200 steps" in printed and "max_steps" in printed
+
+
+def test_watch_shows_one_frame_per_step(capsys):
+    assert main(["watch", "Menu", "--agent", "tabular-q", "--steps", "5", "--learn-steps", "400",
+                 "--fps", "0"]) == 0
+    printed = capsys.readouterr().out
+    assert sum(line.startswith("energy") for line in printed.splitlines()) == 6  # reset + 5
+    assert "episode of 5 steps, truncated" in printed
+
+
+def test_builtin_suites_fit_the_registries():
+    suites = {name: load_suite(name) for name in builtin_suites()}
+    assert {"quickstart", "core", "tradeoff"} <= set(suites)
+    registered = set(needbench.envs.TASK_IDS)
+    # quickstart and core cover every registered task: a new task must be added to them.
+    assert {task.id for task in suites["quickstart"].tasks} == registered
+    assert {task.id for task in suites["core"].tasks} == registered
+    assert len(suites["core"].seeds) >= 5
+    assert {task.id for task in suites["tradeoff"].tasks} == {"needbench/Shift-v0",
+                                                              "needbench/Forage-v0"}
+    labels = {sweep.label for sweep in suites["tradeoff"].sweeps}
+    assert "task.task_weight" in labels and any("gamma" in label for label in labels)
