@@ -78,10 +78,21 @@ class Drive:
     def __init__(self, weights=None, scale=None, num_needs: int | None = None):
         self.weights = _vector("drive.weights", weights, num_needs, positive=False)
         self.scale = _vector("drive.scale", scale, num_needs, positive=True)
+        self._scale_tiles: dict[int, np.ndarray] = {}
 
     def _distance(self, level: np.ndarray, set_point: np.ndarray) -> np.ndarray:
         """Signed distance to the set point in scale units, h* - h (positive = deficit)."""
-        return (np.asarray(set_point) - np.asarray(level)) / self.scale
+        gap = np.asarray(set_point) - np.asarray(level)
+        if isinstance(self.scale, float):
+            return gap if self.scale == 1.0 else gap / self.scale
+        if gap.ndim == 2:
+            # A (K,) row broadcast over (B, K) is slow for small K; divide by a tile.
+            tile = self._scale_tiles.get(gap.shape[0])
+            if tile is None:
+                tile = self._scale_tiles.setdefault(gap.shape[0],
+                                                    np.tile(self.scale, (gap.shape[0], 1)))
+            return gap / tile
+        return gap / self.scale
 
     def __call__(self, level: np.ndarray, set_point: np.ndarray) -> np.ndarray:
         raise NotImplementedError
@@ -90,6 +101,8 @@ class Drive:
         """The drive's parameters as plain Python values (for hashing and logs)."""
         out = {"family": self.family}
         for key, value in vars(self).items():
+            if key.startswith("_"):
+                continue
             out[key] = value.tolist() if isinstance(value, np.ndarray) else value
         return out
 

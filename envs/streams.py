@@ -53,20 +53,28 @@ class CopyStreams:
     def batch(self) -> int:
         return self.keys.shape[0]
 
+    def _words(self, per_copy: int) -> np.ndarray:
+        """(per_copy, B) random words: row j holds word j of every copy.
+
+        Laid out with the batch as the fast axis, because numpy broadcasts a short
+        row over a long column many times slower than the other way round.
+        """
+        steps = _OFFSETS.get(per_copy)
+        if steps is None:
+            steps = _OFFSETS.setdefault(
+                per_copy, (np.arange(per_copy, dtype=np.uint64) * _GOLDEN)[:, None])
+        with np.errstate(over="ignore"):
+            # Word j of copy b hashes key_b + (counter_b + j) * golden.
+            start = self.keys + self.counter * _GOLDEN
+            x = _splitmix(start + steps)
+        self.counter += np.uint64(per_copy)
+        return x
+
     def _bits(self, size) -> np.ndarray:
         size = (size,) if isinstance(size, (int, np.integer)) else tuple(size)
         if not size or size[0] != self.batch:
             raise ValueError(f"size {size} must start with the batch size {self.batch}")
-        per_copy = math.prod(size[1:])
-        steps = _OFFSETS.get(per_copy)
-        if steps is None:
-            steps = _OFFSETS.setdefault(per_copy, np.arange(per_copy, dtype=np.uint64) * _GOLDEN)
-        with np.errstate(over="ignore"):
-            # Word j of copy b hashes key_b + (counter_b + j) * golden.
-            start = self.keys + self.counter * _GOLDEN
-            x = _splitmix(start[:, None] + steps)
-        self.counter += np.uint64(per_copy)
-        return x.reshape(size)
+        return self._words(math.prod(size[1:])).T.reshape(size)
 
     def random(self, size) -> np.ndarray:
         """Uniform floats in [0, 1) with 53 random bits."""
@@ -83,20 +91,21 @@ class CopyStreams:
         hashes ceil(n / 2) words.
         """
         size = (size,) if isinstance(size, (int, np.integer)) else tuple(size)
+        if not size or size[0] != self.batch:
+            raise ValueError(f"size {size} must start with the batch size {self.batch}")
         count = math.prod(size[1:])
         pairs = (count + 1) // 2
-        bits = self._bits((self.batch, pairs))
+        bits = self._words(pairs)  # (pairs, B)
         u1 = (bits >> _S32).astype(np.float64) * _INV32
         u2 = (bits & _LOW32).astype(np.float64) * _INV32
         radius = np.sqrt(-2.0 * np.log1p(-u1))  # 1 - u1 in (0, 1]: the log is finite
         # Single-precision trigonometry runs on numpy's SIMD kernels, several times
         # faster than double; 24-bit angles are ample for simulation noise.
         angle = (_TWO_PI * u2).astype(np.float32)
-        cosine, sine = np.cos(angle), np.sin(angle)
-        normals = np.empty((self.batch, 2 * pairs))
-        np.multiply(radius, cosine, out=normals[:, :pairs])
-        np.multiply(radius, sine, out=normals[:, pairs:])
-        return normals[:, :count].reshape(size)
+        normals = np.empty((2 * pairs, self.batch))
+        np.multiply(radius, np.cos(angle), out=normals[:pairs])
+        np.multiply(radius, np.sin(angle), out=normals[pairs:])
+        return normals[:count].T.reshape(size)
 
     def integers(self, low, high=None, size=None) -> np.ndarray:
         """Integers uniform in [low, high) (numpy's convention)."""
