@@ -488,24 +488,23 @@ def command_watch(args: argparse.Namespace) -> int:
 # The parser
 # ----------------------------------------------------------------------------
 
-def _positive(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"{value} is not >= 1")
-    return value
+def _whole_number(minimum: int):
+    """An argparse type: a whole number >= ``minimum``."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"{value} is not >= {minimum}")
+        return value
+
+    return parse
 
 
-def _non_negative(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"{value} is not >= 0")
-    return value
+_positive = _whole_number(1)
+_non_negative = _whole_number(0)
 
 
 def build_parser() -> argparse.ArgumentParser:
