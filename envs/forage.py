@@ -163,6 +163,11 @@ class ForageWorld(World):
         # Manhattan distance tables: row_distance[r] (H,) = |r - rows|, likewise columns.
         self.row_distance = np.abs(np.arange(rows)[:, None] - np.arange(rows)[None, :])
         self.column_distance = np.abs(np.arange(columns)[:, None] - np.arange(columns)[None, :])
+        # cell_distance[c] (H * W,) = Manhattan distance from flat cell c to every cell,
+        # one gather per step instead of a broadcast sum.
+        self.cell_distance = (self.row_distance[:, None, :, None]
+                              + self.column_distance[None, :, None, :]).reshape(
+                                  rows * columns, rows * columns).astype(np.int32)
 
         # Per-need conversion vectors (K,): world quantities are in band units of
         # the need they touch; the body wants need units per unit time.
@@ -345,9 +350,9 @@ class ForageWorld(World):
         """Row offsets, column offsets and flat cell indices, each (B, S), of the
         nearest cell of each of S non-empty masks (B, S, H, W)."""
         batch, kinds = position.shape[0], masks.shape[1]
-        distance = (self.row_distance[position[:, 0]][:, None, :, None]
-                    + self.column_distance[position[:, 1]][:, None, None, :])
-        index = np.where(masks, distance, _FAR).reshape(batch, kinds, -1).argmin(axis=2)
+        distance = self.cell_distance[position[:, 0] * self.columns + position[:, 1]]
+        index = np.where(masks.reshape(batch, kinds, -1), distance[:, None, :],
+                         np.int32(_FAR)).argmin(axis=2)
         return (index // self.columns - position[:, 0, None],
                 index % self.columns - position[:, 1, None], index)
 
