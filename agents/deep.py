@@ -103,6 +103,7 @@ from gymnasium.vector import VectorEnv
 from needbench.agents.base import (
     Agent,
     Logger,
+    NotApplicableError,
     NullLogger,
     build_hyperparameters,
     check_seed,
@@ -826,8 +827,8 @@ class DeepAgent(Agent):
         import_stable_baselines3(self.name)
         if not isinstance(action_space, self.action_kinds):
             allowed = " or ".join(kind.__name__ for kind in self.action_kinds)
-            raise ConfigError("action_space", action_space,
-                              f"a {allowed} action space ({self.name} acts only on those)")
+            raise NotApplicableError("action_space", action_space,
+                                     f"a {allowed} action space ({self.name} acts only on those)")
         self.model: Any = None
         #: The hyperparameters the model was built with (None fields filled), once built.
         self.resolved_hyperparameters: Any = None

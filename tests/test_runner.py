@@ -231,3 +231,19 @@ def test_progress_line_counts_and_estimates(monkeypatch):
     # 2 of 4 jobs took 30 s: the other 2 are estimated at 30 s more.
     assert progress.line() == ("[2/4] 1 done, 1 failed, 2 already done | elapsed 0m30s"
                                " | ETA 0m30s")
+
+
+@pytest.mark.parametrize("agent, task", [
+    ("tabular-q", "needbench/Arena-v0"), ("exact-planner", "needbench/Forage-v0"),
+    ("setpoint-controller", "needbench/Forewarn-v0"), ("sac", "needbench/Menu-v0"),
+    ("dqn", "needbench/Arena-v0"),
+])
+def test_agents_say_not_applicable_for_tasks_outside_their_reach(agent, task):
+    import gymnasium as gym
+
+    from needbench.agents import make_agent
+    from needbench.agents.base import NotApplicableError
+
+    env = gym.make(task)
+    with pytest.raises(NotApplicableError):
+        make_agent(agent, env.observation_space, env.action_space).learn(env, 10, seed=0)
