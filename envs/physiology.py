@@ -164,6 +164,10 @@ class Physiology:
         }
         self._tile_cache: dict[int, dict[str, np.ndarray]] = {}
 
+    def _coefficients(self, level: np.ndarray) -> dict[str, np.ndarray]:
+        """The step coefficients shaped for ``level``: tiles for (B, K), rows for (K,)."""
+        return self._tiles(level.shape[0]) if level.ndim == 2 else self._vectors
+
     def _tiles(self, batch: int) -> dict[str, np.ndarray]:
         """The per-need coefficients repeated to (batch, K), computed once per batch size.
 
@@ -212,7 +216,7 @@ class Physiology:
             the bodies after the step (new arrays; the input is not modified).
         """
         level, gut, set_point = state
-        c = self._tiles(level.shape[0]) if level.ndim == 2 else self._vectors
+        c = self._coefficients(level)
         if intake is not None:
             if self._any_delayed:
                 gut = gut + intake * c["delayed_share"]
@@ -251,19 +255,19 @@ class Physiology:
     def alive(self, state: BodyState) -> np.ndarray:
         """(B,) True where every need is strictly inside its lethal bounds."""
         level = state.level
-        c = self._tiles(level.shape[0]) if level.ndim == 2 else self._vectors
+        c = self._coefficients(level)
         return _all_needs(np.minimum(level - c["lethal_low"], c["lethal_high"] - level) > 0)
 
     def deviation(self, state: BodyState) -> np.ndarray:
         """(B, K) signed deviation from the set point in comfort-band units."""
         level = state.level
-        band = self._tiles(level.shape[0])["band"] if level.ndim == 2 else self.band
+        band = self._coefficients(level)["band"]
         return (level - state.set_point) / band
 
     def in_band(self, state: BodyState) -> np.ndarray:
         """(B,) True where every need is inside its comfort band."""
         level = state.level
-        band = self._tiles(level.shape[0])["band"] if level.ndim == 2 else self.band
+        band = self._coefficients(level)["band"]
         return _all_needs(np.abs(level - state.set_point) <= band)
 
     def vector(self, values: dict[str, float], default: float = 0.0) -> np.ndarray:

@@ -204,7 +204,6 @@ class TaskCore:
         self.streams = CopyStreams(np.zeros(batch, dtype=np.uint64))
         self.body: BodyState | None = None
         self._drive_of: tuple[BodyState | None, np.ndarray | None] = (None, None)
-        self._drive_stale = True
         self.state: dict[str, np.ndarray] = {}
         self.t = np.zeros(batch, dtype=np.int64)
 
@@ -246,7 +245,7 @@ class TaskCore:
         self.streams.merge(mask, sub)
         for old, new in zip(self.body, fresh_body, strict=True):
             old[mask] = new
-        self._drive_stale = True
+        self._drive_of = (None, None)  # the bodies changed in place
         for key, value in fresh_world.items():
             self.state[key][mask] = value
         self.t[mask] = 0
@@ -272,10 +271,9 @@ class TaskCore:
         changed in place by a reset) is scored afresh.
         """
         body, drive = self._drive_of
-        if body is not self.body or self._drive_stale:
+        if body is not self.body:
             drive = self.drive(self.body.level, self.body.set_point)
             self._drive_of = (self.body, drive)
-            self._drive_stale = False
         return drive
 
     def body_info(self) -> dict[str, np.ndarray]:
