@@ -481,8 +481,8 @@ def rule_for(core: Any, action_space: spaces.Space, settings: ControllerHyperpar
                                   np.shape(table["probabilities"]),
                                   f"one row per action ({action_space.n} rows)")
             return OutcomeRule.from_core(core)
-    from needbench.envs.arena import ArenaWorld
-    from needbench.envs.forage import ForageWorld
+    from needbench.envs.tasks.arena import ArenaWorld
+    from needbench.envs.tasks.forage import ForageWorld
 
     if isinstance(world, ForageWorld):
         if world.view == "full":

@@ -38,8 +38,8 @@ def _register_all() -> None:
             continue
         register(
             id=task_id,
-            entry_point=f"needbench.envs.{module}:{prefix}Env",
-            vector_entry_point=f"needbench.envs.{module}:{prefix}VectorEnv",
+            entry_point=f"needbench.envs.tasks.{module}:{prefix}Env",
+            vector_entry_point=f"needbench.envs.tasks.{module}:{prefix}VectorEnv",
             kwargs=kwargs,
         )
 

@@ -10,16 +10,21 @@ drive and an asymmetric drive with its own weight and exponent below and above
 the set point. Every drive accepts arrays of shape (..., K) and reduces the last
 axis, so the same object scores one body, a batch (B, K) or a trace (T, K).
 
-This module is the only implementation of these formulas in needbench: tasks,
-metrics and agents all call the drive object a task was built with.
+All three families are one compiled form, :func:`drive_of`, fed by each drive
+object's ``table`` (weights below and above the set point, scales) and
+``exponents``. It is the only implementation of these formulas in needbench:
+task kernels call it, and tasks, metrics and agents call the drive object a
+task was built with.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
+from numba import njit
 
 from needbench.envs.errors import ConfigError, check_positive
 
@@ -41,12 +46,15 @@ def _vector(path: str, value: float | Sequence[float] | None, size: int | None,
     return float(arr) if arr.ndim == 0 else arr
 
 
-def power(x: np.ndarray, p: float) -> np.ndarray:
-    """x ** p for x >= 0, with multiplication or sqrt for the common exponents.
+# Rows of a drive's (3, K) table and entries of its exponent vector.
+WEIGHT_BELOW, WEIGHT_ABOVE, SCALE = range(3)
+N_BELOW, N_ABOVE, ROOT = range(3)
 
-    The drive is computed every step of every copy; a float power costs an exp
-    and a log per element, while the exponents used in practice are small.
-    """
+
+@njit(cache=True)
+def power(x, p):
+    """x ** p for x >= 0, with multiplication or sqrt for the common exponents
+    (a float power costs an exp and a log; the exponents used are small)."""
     if p == 1.0:
         return x
     if p == 2.0:
@@ -57,17 +65,32 @@ def power(x: np.ndarray, p: float) -> np.ndarray:
         y = x * x
         return y * y
     if p == 0.5:
-        return np.sqrt(x)
-    return np.power(x, p)
+        return math.sqrt(x)
+    return x ** p
 
 
-def weighted_sum(terms: np.ndarray, weights: np.ndarray | float) -> np.ndarray:
-    """sum_i w_i terms_i over the last axis, as a matrix-vector product.
+@njit(cache=True)
+def drive_of(level, set_point, table, exponents):
+    """The drive of one body: (sum_i w_i(d_i) |d_i|^n(d_i))^(1/m), d = (h* - h)/s.
 
-    numpy's reductions along a short last axis (K is 2 to 5) cost several times
-    more per element than a product with the weight vector.
+    Every family is this one form: a deficit (d > 0) takes the ``below``
+    weight and exponent, an excess the ``above`` ones (equal for the
+    symmetric families). ``level`` and ``set_point`` are (K,) rows.
     """
-    return terms @ np.broadcast_to(np.asarray(weights, dtype=np.float64), terms.shape[-1:])
+    total = 0.0
+    for k in range(level.shape[0]):
+        d = (set_point[k] - level[k]) / table[SCALE, k]
+        if d > 0.0:
+            total += table[WEIGHT_BELOW, k] * power(abs(d), exponents[N_BELOW])
+        else:
+            total += table[WEIGHT_ABOVE, k] * power(abs(d), exponents[N_ABOVE])
+    return power(total, exponents[ROOT])
+
+
+@njit(cache=True)
+def _drives(level, set_point, table, exponents, out):
+    for i in range(level.shape[0]):
+        out[i] = drive_of(level[i], set_point[i], table, exponents)
 
 
 class Drive:
@@ -78,24 +101,56 @@ class Drive:
     def __init__(self, weights=None, scale=None, num_needs: int | None = None):
         self.weights = _vector("drive.weights", weights, num_needs, positive=False)
         self.scale = _vector("drive.scale", scale, num_needs, positive=True)
-        self._scale_tiles: dict[int, np.ndarray] = {}
+        self._num_needs = num_needs
 
-    def _distance(self, level: np.ndarray, set_point: np.ndarray) -> np.ndarray:
-        """Signed distance to the set point in scale units, h* - h (positive = deficit)."""
-        gap = np.asarray(set_point) - np.asarray(level)
-        if isinstance(self.scale, float):
-            return gap if self.scale == 1.0 else gap / self.scale
-        if gap.ndim == 2:
-            # A (K,) row broadcast over (B, K) is slow for small K; divide by a tile.
-            tile = self._scale_tiles.get(gap.shape[0])
-            if tile is None:
-                tile = self._scale_tiles.setdefault(gap.shape[0],
-                                                    np.tile(self.scale, (gap.shape[0], 1)))
-            return gap / tile
-        return gap / self.scale
+    def _compile(self, weight_below, weight_above, n_below: float, n_above: float,
+                 m: float) -> None:
+        """Set the kernel's ``table`` (3, K) and ``exponents`` (3,) of this drive."""
+        size = self._num_needs
+        if size is None:
+            sizes = {np.size(v) for v in (weight_below, weight_above, self.scale)} - {1}
+            size = sizes.pop() if sizes else 1
+        table = np.empty((3, size))
+        table[WEIGHT_BELOW], table[WEIGHT_ABOVE], table[SCALE] = (
+            weight_below, weight_above, self.scale)
+        table.setflags(write=False)
+        self._table = table
+        self._wide: dict[int, np.ndarray] = {}
+        self._exponents = np.array([n_below, n_above, 1.0 / m])
+        self._exponents.setflags(write=False)
+
+    def table(self, num_needs: int) -> np.ndarray:
+        """(3, K) weights below and above the set point and scales, for kernels.
+
+        A drive declared with scalar parameters and no ``num_needs`` serves any K.
+        """
+        if self._table.shape[1] == num_needs:
+            return self._table
+        if self._table.shape[1] != 1:
+            raise ConfigError("drive", self, f"a drive for {num_needs} needs "
+                              f"(this one has {self._table.shape[1]})")
+        wide = self._wide.get(num_needs)
+        if wide is None:
+            wide = self._wide[num_needs] = np.repeat(self._table, num_needs, axis=1)
+            wide.setflags(write=False)
+        return wide
+
+    @property
+    def exponents(self) -> np.ndarray:
+        """(3,) exponent below, exponent above and root 1/m, for kernels."""
+        return self._exponents
 
     def __call__(self, level: np.ndarray, set_point: np.ndarray) -> np.ndarray:
-        raise NotImplementedError
+        """Drive of each body: arrays (..., K) in, (...) out."""
+        level, set_point = np.broadcast_arrays(np.asarray(level, np.float64),
+                                               np.asarray(set_point, np.float64))
+        if level.ndim == 0:
+            raise ConfigError("drive(level)", level.shape, "arrays whose last axis is the needs")
+        flat = np.ascontiguousarray(level).reshape(-1, level.shape[-1])
+        out = np.empty(flat.shape[0])
+        _drives(flat, np.ascontiguousarray(set_point).reshape(flat.shape),
+                self.table(flat.shape[1]), self._exponents, out)
+        return out.reshape(level.shape[:-1])
 
     def params(self) -> dict[str, Any]:
         """The drive's parameters as plain Python values (for hashing and logs)."""
@@ -133,10 +188,7 @@ class HomeostaticDrive(Drive):
         super().__init__(weights, scale, num_needs)
         self.n = check_positive("drive.n", n)
         self.m = check_positive("drive.m", m)
-
-    def __call__(self, level, set_point):
-        d = np.abs(self._distance(level, set_point))
-        return power(weighted_sum(power(d, self.n), self.weights), 1.0 / self.m)
+        self._compile(self.weights, self.weights, self.n, self.n, self.m)
 
 
 class QuadraticDrive(Drive):
@@ -144,9 +196,9 @@ class QuadraticDrive(Drive):
 
     family = "quadratic"
 
-    def __call__(self, level, set_point):
-        d = self._distance(level, set_point)
-        return weighted_sum(d * d, self.weights)
+    def __init__(self, weights=None, scale=None, num_needs: int | None = None):
+        super().__init__(weights, scale, num_needs)
+        self._compile(self.weights, self.weights, 2.0, 2.0, 1.0)
 
 
 class AsymmetricDrive(Drive):
@@ -168,13 +220,7 @@ class AsymmetricDrive(Drive):
         self.n_below = check_positive("drive.n_below", n_below)
         self.n_above = check_positive("drive.n_above", n_above)
         self.m = check_positive("drive.m", m)
-
-    def __call__(self, level, set_point):
-        d = self._distance(level, set_point)
-        a = np.abs(d)
-        terms = np.where(d > 0, self.weight_below * power(a, self.n_below),
-                         self.weight_above * power(a, self.n_above))
-        return power(weighted_sum(terms, 1.0), 1.0 / self.m)
+        self._compile(self.weight_below, self.weight_above, self.n_below, self.n_above, self.m)
 
 
 DRIVE_FAMILIES: dict[str, type[Drive]] = {

@@ -1,7 +1,8 @@
-"""The physiology core: pure, batched functions over arrays of shape (B, K).
+"""The physiology core: B bodies of K needs, arrays of shape (B, K), compiled.
 
 B copies of a body, K needs. One implementation serves the single env (B = 1)
-and the native vector env (B = N); nothing here loops over needs or copies.
+and the native vector env (B = N): :func:`advance_body` advances one copy in
+compiled code (numba), and the task kernels call it copy by copy.
 
 Within one step every passive term is linear in the level, so the step is an
 exact solution of the per-need linear ODE
@@ -18,8 +19,8 @@ first-order uptake rate. The solution over a step of length dt is
 
 with phi(k) = (1 - e^{-k dt}) / k (-> dt as k -> 0) and the usual limit
 g u dt e^{-k dt} when k = u. This is exponential (exact) discretisation: no
-Euler error, whatever dt. Because k, u and dt are fixed per body, the three
-coefficients are computed once, and a step costs a handful of array operations.
+Euler error, whatever dt. Because k, u and dt are fixed per body, the
+coefficients are computed once, as the rows of one (rows, K) table.
 """
 
 from __future__ import annotations
@@ -29,18 +30,121 @@ from collections.abc import Sequence
 from typing import NamedTuple
 
 import numpy as np
+from numba import njit
 
 from needbench.envs.errors import ConfigError, check_positive
 from needbench.envs.needs import Coupling, Need
+from needbench.envs.streams import as_streams, draw_normals, draw_uniform
+
+# Rows of the coefficient table (one column per need).
+DECAY, STEP_CONSTANT, STEP_CONSTANT_DEFAULT, AMBIENT_GAIN, ACTIVITY_GAIN, PHI = range(6)
+TRANSFER, GUT_DECAY, NOISE_SCALE, ADAPTATION, LETHAL_LOW, LETHAL_HIGH = range(6, 12)
+BAND, DELAYED, SET_POINT, INITIAL_LOW, INITIAL_HIGH = range(12, 17)
+COEFFICIENT_ROWS = 17
+# Entries of the flag vector of a body.
+ANY_DELAYED, NOISY, ADAPTS, COUPLED, COUPLED_BELOW = range(5)
 
 
-def _all_needs(ok: np.ndarray) -> np.ndarray:
-    """(B,) rows of a (B, K) boolean array that are all true.
+@njit(cache=True)
+def advance_body(b, level, gut, set_point, intake, activity, ambient, forcing, use_ambient,
+                 coefficients, coupling, coupling_below, flags, keys, counters, scratch):
+    """Advance copy ``b`` of a batch of bodies by one step, in place.
 
-    A matrix-vector product counts the true entries: numpy's reductions along a
-    short last axis (K is 2 to 5) cost several times more per element.
+    ``level``, ``gut``, ``set_point`` (B, K) are overwritten with the state
+    after the step. Inputs of the step: ``intake`` (B, K) amounts consumed
+    (into the gut, or at once for needs with instant uptake), ``activity``
+    (B,), ``ambient`` (B, K) read only when ``use_ambient`` (else each need's
+    own ambient), ``forcing`` (B, K) extra gain per unit time. ``scratch`` is a
+    (2, K) work array: the Gaussian draws of a noisy body and the new levels.
     """
-    return ok.astype(np.float64) @ np.ones(ok.shape[-1]) == ok.shape[-1]
+    c = coefficients
+    k_count = level.shape[1]
+    # Coupling losses are read off the level after an instant intake.
+    for k in range(k_count):
+        if c[DELAYED, k] != 0.0:
+            gut[b, k] = gut[b, k] + intake[b, k]
+        else:
+            level[b, k] = level[b, k] + intake[b, k]
+    noise, new_level = scratch[0], scratch[1]
+    if flags[NOISY]:
+        draw_normals(keys, counters, b, noise)
+    for k in range(k_count):
+        # h' = h e^{-k dt} + phi (k a + f) + g transfer, each forcing term
+        # pre-multiplied by phi.
+        new = level[b, k] * c[DECAY, k]
+        if use_ambient:
+            new += c[STEP_CONSTANT, k]
+            new += ambient[b, k] * c[AMBIENT_GAIN, k]
+        else:
+            new += c[STEP_CONSTANT_DEFAULT, k]
+        new -= activity[b] * c[ACTIVITY_GAIN, k]
+        new += forcing[b, k] * c[PHI, k]
+        if flags[COUPLED]:
+            # Losses: max(e, 0) @ above + max(-e, 0) @ below, e = h - h*; with
+            # max(-e, 0) = max(e, 0) - e this is max(e, 0) @ (above + below) - e @ below.
+            loss = 0.0
+            for j in range(k_count):
+                loss += max(level[b, j] - set_point[b, j], 0.0) * coupling[j, k]
+            new -= loss
+            if flags[COUPLED_BELOW]:
+                gain = 0.0
+                for j in range(k_count):
+                    gain += (level[b, j] - set_point[b, j]) * coupling_below[j, k]
+                new += gain
+        if flags[ANY_DELAYED]:
+            new += gut[b, k] * c[TRANSFER, k]
+        if flags[NOISY]:
+            new += c[NOISE_SCALE, k] * noise[k]
+        new_level[k] = new  # held until every need has read the old levels
+    for k in range(k_count):
+        new = new_level[k]
+        if flags[ANY_DELAYED]:
+            gut[b, k] = gut[b, k] * c[GUT_DECAY, k]
+        if flags[ADAPTS]:
+            set_point[b, k] = set_point[b, k] + c[ADAPTATION, k] * (new - set_point[b, k])
+        level[b, k] = new
+
+
+@njit(cache=True)
+def initial_body(b, level, gut, set_point, coefficients, keys, counters):
+    """Fresh body ``b``: levels uniform in each need's initial range, gut empty."""
+    c = coefficients
+    for k in range(level.shape[1]):
+        u = draw_uniform(keys, counters, b)
+        level[b, k] = c[INITIAL_LOW, k] + (c[INITIAL_HIGH, k] - c[INITIAL_LOW, k]) * u
+        gut[b, k] = 0.0
+        set_point[b, k] = c[SET_POINT, k]
+
+
+@njit(cache=True)
+def is_alive(b, level, coefficients):
+    """True where every need of copy ``b`` is strictly inside its lethal bounds."""
+    for k in range(level.shape[1]):
+        if not (level[b, k] - coefficients[LETHAL_LOW, k] > 0.0
+                and coefficients[LETHAL_HIGH, k] - level[b, k] > 0.0):
+            return False
+    return True
+
+
+@njit(cache=True)
+def _transition(level, gut, set_point, intake, activity, ambient, forcing, use_ambient,
+                coefficients, coupling, coupling_below, flags, keys, counters):
+    scratch = np.empty((2, level.shape[1]))
+    for b in range(level.shape[0]):
+        advance_body(b, level, gut, set_point, intake, activity, ambient, forcing, use_ambient,
+                     coefficients, coupling, coupling_below, flags, keys, counters, scratch)
+
+
+@njit(cache=True)
+def _initial(level, gut, set_point, coefficients, keys, counters):
+    for b in range(level.shape[0]):
+        initial_body(b, level, gut, set_point, coefficients, keys, counters)
+
+
+@njit(cache=True)
+def _alive(level, coefficients, out):
+    for b in range(level.shape[0]):
+        out[b] = is_alive(b, level, coefficients)
 
 
 class BodyState(NamedTuple):
@@ -84,9 +188,10 @@ class Physiology:
         couplings: cross-need couplings (by need name).
         dt: length of one step in the body's time unit (must be > 0).
 
-    The object is immutable after construction; the functions
-    :meth:`initial`, :meth:`transition`, :meth:`alive` and :meth:`deviation`
-    are pure apart from the random generator they are given.
+    The object is immutable after construction. :attr:`coefficients` (rows,
+    K), :attr:`coupling`, :attr:`coupling_below` (K, K) and :attr:`flags` are
+    what the kernels read; :meth:`initial`, :meth:`transition`, :meth:`alive`,
+    :meth:`deviation` and :meth:`in_band` call those kernels on whole batches.
     """
 
     def __init__(self, needs: Sequence[Need], couplings: Sequence[Coupling] = (), dt: float = 1.0):
@@ -119,23 +224,28 @@ class Physiology:
         self.adaptation_rate = column("adaptation_rate")
         self.noise = column("noise")
         self.delayed = np.isfinite(self.uptake_rate)
-        self._delayed_share = self.delayed.astype(np.float64)
-        self._instant_share = 1.0 - self._delayed_share
-        self._any_delayed = bool(self.delayed.any())
-        self._any_instant = not bool(self.delayed.all())
         self.adapts = bool(np.any(self.adaptation_rate > 0))
         self.noisy = bool(np.any(self.noise > 0))
 
         k = self.ambient_rate
-        self._decay, self._phi, self._gut_decay, self._transfer = _relaxation_coefficients(
-            k, self.uptake_rate, self.dt
-        )
+        decay, phi, gut_decay, transfer = _relaxation_coefficients(k, self.uptake_rate, self.dt)
+        table = np.zeros((COEFFICIENT_ROWS, len(needs)))
+        table[DECAY], table[PHI] = decay, phi
+        table[GUT_DECAY], table[TRANSFER] = gut_decay, transfer
         # Step gains: phi times each forcing term (see the module docstring).
-        self._step_constant = -self.drain * self._phi
-        self._step_constant_default = self._step_constant + k * self.ambient * self._phi
-        self._ambient_gain = k * self._phi
-        self._activity_gain = self.activity_cost * self._phi
-        self._noise_scale = self.noise * math.sqrt(self.dt)
+        table[STEP_CONSTANT] = -self.drain * phi
+        table[STEP_CONSTANT_DEFAULT] = table[STEP_CONSTANT] + k * self.ambient * phi
+        table[AMBIENT_GAIN] = k * phi
+        table[ACTIVITY_GAIN] = self.activity_cost * phi
+        table[NOISE_SCALE] = self.noise * math.sqrt(self.dt)
+        table[ADAPTATION] = self.adaptation_rate
+        table[LETHAL_LOW], table[LETHAL_HIGH] = self.lethal_low, self.lethal_high
+        table[BAND] = self.band
+        table[DELAYED] = self.delayed
+        table[SET_POINT] = self.set_point
+        table[INITIAL_LOW], table[INITIAL_HIGH] = self.initial_low, self.initial_high
+        table.setflags(write=False)
+        self.coefficients = table
 
         K = len(needs)
         above = np.zeros((K, K))
@@ -150,62 +260,42 @@ class Physiology:
             matrix = above if c.side == "above" else below
             matrix[self.index[c.source], self.index[c.target]] += c.gain
         # Coupling losses enter the step through phi of the target need.
-        self._coupling = (above + below) * self._phi if (above.any() or below.any()) else None
-        self._coupling_below = below * self._phi if below.any() else None
-        # Per-need (K,) coefficients of the step by name, and their (B, K) tiles.
-        self._vectors = {
-            "delayed_share": self._delayed_share, "instant_share": self._instant_share,
-            "decay": self._decay, "step_constant": self._step_constant,
-            "step_constant_default": self._step_constant_default,
-            "ambient_gain": self._ambient_gain, "activity_gain": self._activity_gain,
-            "phi": self._phi, "transfer": self._transfer, "gut_decay": self._gut_decay,
-            "noise_scale": self._noise_scale, "adaptation_rate": self.adaptation_rate,
-            "lethal_low": self.lethal_low, "lethal_high": self.lethal_high, "band": self.band,
-        }
-        self._tile_cache: dict[int, dict[str, np.ndarray]] = {}
-
-    def _coefficients(self, level: np.ndarray) -> dict[str, np.ndarray]:
-        """The step coefficients shaped for ``level``: tiles for (B, K), rows for (K,)."""
-        return self._tiles(level.shape[0]) if level.ndim == 2 else self._vectors
-
-    def _tiles(self, batch: int) -> dict[str, np.ndarray]:
-        """The per-need coefficients repeated to (batch, K), computed once per batch size.
-
-        numpy broadcasts a (K,) row over (B, K) with an inner loop of length K; for
-        K of 2 to 5 that costs several times an operation on two (B, K) arrays.
-        """
-        tiles = self._tile_cache.get(batch)
-        if tiles is None:
-            tiles = {name: np.tile(value, (batch, 1)) for name, value in self._vectors.items()}
-            self._tile_cache[batch] = tiles
-        return tiles
+        self.coupling = (above + below) * phi
+        self.coupling_below = below * phi
+        self.flags = np.array([self.delayed.any(), self.noisy, self.adapts,
+                               above.any() or below.any(), below.any()], dtype=np.bool_)
 
     @property
     def num_needs(self) -> int:
         return len(self.needs)
 
-    def initial(self, rng: np.random.Generator, batch: int) -> BodyState:
-        """B fresh bodies, levels uniform in each need's initial range, guts empty."""
-        level = rng.uniform(self.initial_low, self.initial_high, size=(batch, self.num_needs))
-        gut = np.zeros((batch, self.num_needs))
-        set_point = np.broadcast_to(self.set_point, (batch, self.num_needs)).copy()
-        return BodyState(level, gut, set_point)
+    def initial(self, rng, batch: int) -> BodyState:
+        """B fresh bodies, levels uniform in each need's initial range, guts empty.
+
+        ``rng``: the copies' :class:`~needbench.envs.streams.CopyStreams`, or a
+        numpy Generator to draw fresh stream keys from.
+        """
+        streams = as_streams(rng, batch)
+        state = BodyState(*(np.empty((batch, self.num_needs)) for _ in range(3)))
+        _initial(*state, self.coefficients, streams.keys, streams.counter)
+        return state
 
     def transition(
         self,
         state: BodyState,
-        rng: np.random.Generator | None = None,
+        rng=None,
         *,
         intake: np.ndarray | None = None,
         activity: np.ndarray | None = None,
         ambient: np.ndarray | None = None,
         forcing: np.ndarray | None = None,
     ) -> BodyState:
-        """Advance B bodies by one step.
+        """Advance B bodies by one step (the compiled :func:`advance_body` per copy).
 
         Args:
             state: the bodies before the step.
-            rng: source of noise (needed only if some need has ``noise > 0``).
+            rng: source of noise (needed only if some need has ``noise > 0``):
+                the copies' CopyStreams, or a numpy Generator to key them from.
             intake: (B, K) amounts consumed this step; they enter the gut (or,
                 for needs with ``uptake_rate = inf``, the level at once).
             activity: (B,) activity level this step (0 = rest).
@@ -215,60 +305,42 @@ class Physiology:
         Returns:
             the bodies after the step (new arrays; the input is not modified).
         """
-        level, gut, set_point = state
-        c = self._coefficients(level)
-        if intake is not None:
-            if self._any_delayed:
-                gut = gut + intake * c["delayed_share"]
-            if self._any_instant:
-                level = level + intake * c["instant_share"]
-        # h' = h e^{-k dt} + phi (k a + f) + g transfer, with every forcing term
-        # pre-multiplied by phi so that each costs one array operation.
-        new_level = level * c["decay"]
-        if ambient is None:
-            new_level += c["step_constant_default"]
-        else:
-            new_level += c["step_constant"]
-            new_level += ambient * c["ambient_gain"]
-        if activity is not None:
-            new_level -= np.asarray(activity)[..., None] * c["activity_gain"]
-        if forcing is not None:
-            new_level += forcing * c["phi"]
-        if self._coupling is not None:
-            # Losses: max(e, 0) @ above + max(-e, 0) @ below, e = h - h*; with
-            # max(-e, 0) = max(e, 0) - e this is max(e, 0) @ (above + below) - e @ below.
-            excess = level - set_point
-            new_level -= np.maximum(excess, 0.0) @ self._coupling
-            if self._coupling_below is not None:
-                new_level += excess @ self._coupling_below
-        if self._any_delayed:
-            new_level += gut * c["transfer"]
-        new_gut = gut * c["gut_decay"] if self._any_delayed else gut
-        if self.noisy:
-            if rng is None:
-                raise ConfigError("rng", rng, "a numpy Generator when some need has noise > 0")
-            new_level += c["noise_scale"] * rng.standard_normal(level.shape)
-        if self.adapts:
-            set_point = set_point + c["adaptation_rate"] * (new_level - set_point)
-        return BodyState(new_level, new_gut, set_point)
+        level = np.array(state.level, dtype=np.float64, ndmin=2)
+        batch, k = level.shape
+        if self.noisy and rng is None:
+            raise ConfigError("rng", rng, "CopyStreams or a numpy Generator when some need "
+                              "has noise > 0")
+        streams = as_streams(rng, batch) if rng is not None else as_streams(
+            np.random.default_rng(0), batch)
+
+        def batch_of(values, shape) -> np.ndarray:
+            if values is None:
+                return np.zeros(shape)
+            return np.ascontiguousarray(np.broadcast_to(np.asarray(values, np.float64), shape))
+
+        gut = np.array(state.gut, dtype=np.float64, ndmin=2)
+        set_point = np.array(np.broadcast_to(state.set_point, (batch, k)), dtype=np.float64)
+        _transition(level, gut, set_point, batch_of(intake, (batch, k)),
+                    batch_of(activity, (batch,)), batch_of(ambient, (batch, k)),
+                    batch_of(forcing, (batch, k)), ambient is not None,
+                    self.coefficients, self.coupling, self.coupling_below, self.flags,
+                    streams.keys, streams.counter)
+        return BodyState(level, gut, set_point)
 
     def alive(self, state: BodyState) -> np.ndarray:
         """(B,) True where every need is strictly inside its lethal bounds."""
-        level = state.level
-        c = self._coefficients(level)
-        return _all_needs(np.minimum(level - c["lethal_low"], c["lethal_high"] - level) > 0)
+        level = np.array(state.level, dtype=np.float64, ndmin=2)
+        out = np.empty(level.shape[0], dtype=np.bool_)
+        _alive(level, self.coefficients, out)
+        return out
 
     def deviation(self, state: BodyState) -> np.ndarray:
         """(B, K) signed deviation from the set point in comfort-band units."""
-        level = state.level
-        band = self._coefficients(level)["band"]
-        return (level - state.set_point) / band
+        return (state.level - state.set_point) / self.band
 
     def in_band(self, state: BodyState) -> np.ndarray:
         """(B,) True where every need is inside its comfort band."""
-        level = state.level
-        band = self._coefficients(level)["band"]
-        return _all_needs(np.abs(level - state.set_point) <= band)
+        return np.all(np.abs(state.level - state.set_point) <= self.band, axis=-1)
 
     def vector(self, values: dict[str, float], default: float = 0.0) -> np.ndarray:
         """A (K,) array from a {need name: value} mapping; unknown names raise."""

@@ -14,21 +14,34 @@ Channels (``RewardChannel.kind``):
 
 Every channel is scaled by ``drive_weight``, and a task's extrinsic reward is
 mixed in with ``task_weight``: r = drive_weight * internal + task_weight * task.
+
+The channel also owns what happens at a lethal level, so that every caller
+(the task kernels, the planner's lattice model) sees the same reward:
+``on_lethal="terminate"`` ends the episode; ``"penalise"`` holds the level
+just inside its lethal bounds and the episode goes on; either way
+``lethal_penalty`` is subtracted from the reward of every step that ends
+outside the bounds. :func:`settle` is that whole assembly for one copy.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import NamedTuple
 
 import numpy as np
+from numba import njit
 
-from needbench.envs.drives import Drive
+from needbench.envs.drives import Drive, drive_of
 from needbench.envs.errors import ConfigError, check_choice, check_finite
-from needbench.envs.physiology import BodyState
+from needbench.envs.physiology import BAND, LETHAL_HIGH, LETHAL_LOW, BodyState, is_alive
 
 CHANNELS = ("drive_reduction", "negative_drive", "survival", "sensory_estimate")
+ON_LETHAL = ("terminate", "penalise")
+# Entries of a channel's parameter vector.
+KIND, DRIVE_WEIGHT, TASK_WEIGHT, LETHAL_PENALTY, PENALISE = range(5)
+DRIVE_REDUCTION, NEGATIVE_DRIVE, SURVIVAL, SENSORY_ESTIMATE = range(4)
 
 
 class RewardParts(NamedTuple):
@@ -39,6 +52,96 @@ class RewardParts(NamedTuple):
     task: np.ndarray  # the task's extrinsic reward before weighting
     drive_before: np.ndarray  # D(h_t)
     drive_after: np.ndarray  # D(h_{t+1})
+
+
+@njit(cache=True)
+def reward_parts(level_before, set_point_before, level_after, set_point_after, intake,
+                 perceived, has_perceived, alive, task, drive_before, channel, bias,
+                 drive_table, drive_exponents, work):
+    """(total, internal, D(h_{t+1})) of one copy; rows are (K,) arrays.
+
+    ``perceived`` (K,) is the outcome as the agent perceives it when
+    ``has_perceived``; otherwise the sensory channel perceives ``intake``
+    plus the bias of each consumed need. ``work`` is a (K,) scratch row.
+    """
+    drive_after = drive_of(level_after, set_point_after, drive_table, drive_exponents)
+    kind = int(channel[KIND])
+    if kind == DRIVE_REDUCTION:
+        internal = drive_before - drive_after
+    elif kind == NEGATIVE_DRIVE:
+        internal = -drive_after
+    elif kind == SURVIVAL:
+        internal = 1.0 if alive else 0.0
+    else:
+        for k in range(level_before.shape[0]):
+            if has_perceived:
+                work[k] = level_before[k] + perceived[k]
+            else:
+                extra = bias[k] if intake[k] != 0.0 else 0.0
+                work[k] = level_before[k] + (intake[k] + extra)
+        internal = drive_before - drive_of(work, set_point_before, drive_table, drive_exponents)
+    total = channel[DRIVE_WEIGHT] * internal + channel[TASK_WEIGHT] * task
+    return total, internal, drive_after
+
+
+@njit(cache=True)
+def settle(b, level_before, set_point_before, level, set_point, intake, perceived,
+           has_perceived, task, drive_before, coefficients, channel, bias, drive_table,
+           drive_exponents, work):
+    """The outcome of copy ``b``'s step once its body has moved to ``level``.
+
+    Decides survival, holds the level inside its bounds under ``penalise``
+    (in place), scores the reward and subtracts the lethal penalty. Returns
+    (reward, internal, D(h_{t+1}), alive).
+    """
+    alive = is_alive(b, level, coefficients)
+    if not alive and channel[PENALISE] != 0.0:
+        for k in range(level.shape[1]):
+            margin = 1e-6 * coefficients[BAND, k]
+            level[b, k] = min(max(level[b, k], coefficients[LETHAL_LOW, k] + margin),
+                              coefficients[LETHAL_HIGH, k] - margin)
+    total, internal, drive_after = reward_parts(
+        level_before, set_point_before, level[b], set_point[b], intake[b], perceived[b],
+        has_perceived, alive, task[b], drive_before, channel, bias, drive_table,
+        drive_exponents, work)
+    if not alive:
+        total = total - channel[LETHAL_PENALTY]
+    return total, internal, drive_after, alive
+
+
+@njit(cache=True)
+def _compute(level_before, set_point_before, level_after, set_point_after, intake, perceived,
+             has_perceived, alive, task, drive_before, channel, bias, drive_table,
+             drive_exponents, total, internal, drive_after):
+    work = np.empty(level_before.shape[1])
+    for b in range(level_before.shape[0]):
+        total[b], internal[b], drive_after[b] = reward_parts(
+            level_before[b], set_point_before[b], level_after[b], set_point_after[b], intake[b],
+            perceived[b], has_perceived, alive[b], task[b], drive_before[b], channel, bias,
+            drive_table, drive_exponents, work)
+
+
+@njit(cache=True)
+def _settle(level_before, set_point_before, level, set_point, intake, perceived, has_perceived,
+            task, drive_before, coefficients, channel, bias, drive_table, drive_exponents,
+            total, internal, drive_after, alive):
+    work = np.empty(level.shape[1])
+    for b in range(level.shape[0]):
+        total[b], internal[b], drive_after[b], alive[b] = settle(
+            b, level_before[b], set_point_before[b], level, set_point, intake, perceived,
+            has_perceived, task, drive_before[b], coefficients, channel, bias, drive_table,
+            drive_exponents, work)
+
+
+class Outcome(NamedTuple):
+    """What one step ends in, for B bodies (see :meth:`RewardChannel.outcome`)."""
+
+    reward: np.ndarray  # (B,) the reward paid, lethal penalty included
+    internal: np.ndarray  # (B,) the channel's value before weighting
+    drive_before: np.ndarray  # (B,) D(h_t)
+    drive_after: np.ndarray  # (B,) D(h_{t+1})
+    alive: np.ndarray  # (B,) inside the lethal bounds after the step
+    body: BodyState  # after the step, held inside the bounds under "penalise"
 
 
 @dataclass(frozen=True)
@@ -52,22 +155,54 @@ class RewardChannel:
         task_weight: weight of the task's extrinsic reward.
         bias: for ``sensory_estimate``, the perceived extra per consumed need,
             one number per need (or a single number for all needs).
+        on_lethal: ``"terminate"`` or ``"penalise"`` (see the module docstring).
+        lethal_penalty: subtracted from the reward of a step that ends at a
+            lethal level (finite, >= 0).
     """
 
     kind: str = "drive_reduction"
     drive_weight: float = 1.0
     task_weight: float = 0.0
     bias: float | Sequence[float] = field(default=0.0)
+    on_lethal: str = "terminate"
+    lethal_penalty: float = 0.0
 
     def __post_init__(self) -> None:
         check_choice("reward.kind", self.kind, CHANNELS)
+        check_choice("on_lethal", self.on_lethal, ON_LETHAL)
         check_finite("reward.drive_weight", self.drive_weight)
         check_finite("reward.task_weight", self.task_weight)
-        bias = np.asarray(self.bias, dtype=np.float64)
+        if check_finite("lethal_penalty", self.lethal_penalty) < 0:
+            raise ConfigError("lethal_penalty", self.lethal_penalty, "a finite number >= 0")
+        try:
+            bias = np.asarray(self.bias, dtype=np.float64)
+        except (TypeError, ValueError):
+            bias = np.array([math.nan])
         if bias.ndim > 1 or not np.all(np.isfinite(bias)):
             raise ConfigError("reward.bias", self.bias, "a finite number or one per need")
         if bias.ndim == 1:
             object.__setattr__(self, "bias", tuple(float(b) for b in bias))
+
+    def parameters(self, num_needs: int) -> tuple[np.ndarray, np.ndarray]:
+        """The kernel's (5,) parameter vector and (K,) bias row of this channel."""
+        bias = np.asarray(self.bias, dtype=np.float64)
+        if bias.ndim == 1 and bias.shape[0] != num_needs:
+            raise ConfigError("sensory_bias", self.bias,
+                              f"one number, or a list of {num_needs} numbers (one per need)")
+        vector = np.array([CHANNELS.index(self.kind), self.drive_weight, self.task_weight,
+                           self.lethal_penalty, self.on_lethal == "penalise"], dtype=np.float64)
+        return vector, np.ascontiguousarray(np.broadcast_to(bias, (num_needs,)))
+
+    def _inputs(self, before: BodyState, after_level, intake, task, perceived):
+        level = np.asarray(before.level, dtype=np.float64)
+        batch, k = level.shape
+        zeros = np.zeros((batch, k))
+        intake = zeros if intake is None else np.asarray(intake, dtype=np.float64)
+        has_perceived = perceived is not None
+        perceived = zeros if perceived is None else np.asarray(perceived, dtype=np.float64)
+        task = np.zeros(batch) if task is None else np.asarray(task, dtype=np.float64)
+        return (level, np.asarray(before.set_point, np.float64), intake, perceived,
+                has_perceived, np.broadcast_to(task, (batch,)).copy())
 
     def compute(
         self,
@@ -81,7 +216,7 @@ class RewardChannel:
         perceived: np.ndarray | None = None,
         drive_before: np.ndarray | None = None,
     ) -> RewardParts:
-        """One step's reward for B bodies.
+        """One step's reward for B bodies, before any lethal penalty.
 
         Args:
             drive: the task's drive object.
@@ -92,26 +227,40 @@ class RewardChannel:
             perceived: (B, K) outcome as the agent perceives it, for
                 sensory_estimate; overrides ``intake + bias`` when a task
                 decides per item what is misperceived.
-            drive_before: D(h_t) when the caller already has it (the task
-                engine keeps the drive of its current body).
+            drive_before: D(h_t) when the caller already has it.
         """
-        d_before = drive(before.level, before.set_point) if drive_before is None else drive_before
-        d_after = drive(after.level, after.set_point)
-        if self.kind == "drive_reduction":
-            internal = d_before - d_after
-        elif self.kind == "negative_drive":
-            internal = -d_after
-        elif self.kind == "survival":
-            internal = (np.ones_like(d_after) if alive is None else alive.astype(np.float64))
-        else:  # sensory_estimate
-            if perceived is not None:
-                perceived = before.level + perceived
-            elif intake is None:
-                perceived = before.level
-            else:
-                bias = np.asarray(self.bias, dtype=np.float64)
-                perceived = before.level + intake + np.where(intake != 0, bias, 0.0)
-            internal = d_before - drive(perceived, before.set_point)
-        task = np.zeros_like(d_after) if task is None else np.asarray(task, dtype=np.float64)
-        total = self.drive_weight * internal + self.task_weight * task
+        level, set_point, intake, perceived, has_perceived, task = self._inputs(
+            before, after.level, intake, task, perceived)
+        batch, k = level.shape
+        d_before = drive(level, set_point) if drive_before is None else np.asarray(
+            drive_before, np.float64)
+        alive = np.ones(batch, np.bool_) if alive is None else np.asarray(alive, np.bool_)
+        channel, bias = self.parameters(k)
+        total, internal, d_after = np.empty(batch), np.empty(batch), np.empty(batch)
+        _compute(level, set_point, np.asarray(after.level, np.float64),
+                 np.asarray(np.broadcast_to(after.set_point, (batch, k)), np.float64), intake,
+                 perceived, has_perceived, alive, task, d_before, channel, bias, drive.table(k),
+                 drive.exponents, total, internal, d_after)
         return RewardParts(total, internal, task, d_before, d_after)
+
+    def outcome(self, physiology, drive: Drive, before: BodyState, after: BodyState, *,
+                intake: np.ndarray | None = None, task: np.ndarray | None = None,
+                perceived: np.ndarray | None = None) -> Outcome:
+        """The whole outcome of a step for B bodies, as a task step assembles it:
+        survival, holding at the bounds under ``penalise``, reward and penalty.
+
+        ``after`` is the body as the physiology moved it (not yet held)."""
+        level, set_point, intake, perceived, has_perceived, task = self._inputs(
+            before, after.level, intake, task, perceived)
+        batch, k = level.shape
+        held = np.array(after.level, dtype=np.float64)
+        after_set_point = np.array(np.broadcast_to(after.set_point, (batch, k)), np.float64)
+        channel, bias = self.parameters(k)
+        total, internal, d_after = np.empty(batch), np.empty(batch), np.empty(batch)
+        alive = np.empty(batch, np.bool_)
+        d_before = drive(level, set_point)
+        _settle(level, set_point, held, after_set_point, intake, perceived, has_perceived, task,
+                d_before, physiology.coefficients, channel, bias, drive.table(k), drive.exponents,
+                total, internal, d_after, alive)
+        return Outcome(total, internal, d_before, d_after, alive,
+                       BodyState(held, np.asarray(after.gut), after_set_point))

@@ -1,16 +1,18 @@
-"""Per-copy counter-based random streams, drawn for all copies in one array pass.
+"""Per-copy counter-based random streams, compiled.
 
-A vector env must reproduce N single envs step for step, yet draw its random
-numbers without a Python loop over copies. Each copy therefore owns a 64-bit
-key and a draw counter; a draw is a pure function of (key, counter), computed
-with the SplitMix64 finaliser (Steele, Lea & Flood 2014, "Fast splittable
-pseudorandom number generators") over uint64 arrays. Copy i of a batch and a
-single env with the same key see exactly the same numbers, because every draw
-takes the same count of numbers from every copy.
+A vector env must reproduce N single envs step for step. Each copy therefore
+owns a 64-bit key and a draw counter, and a draw is a pure function of
+(key, counter): word j of copy b is the SplitMix64 finaliser (Steele, Lea &
+Flood 2014, "Fast splittable pseudorandom number generators") of
+key_b + (counter_b + j) * golden, in wrapping uint64 arithmetic. Copy i of a
+batch and a single env with the same key see exactly the same numbers, because
+every draw takes the same count of words from every copy.
 
-The methods mirror numpy's Generator (``random``, ``uniform``, ``standard_normal``,
-``integers``) with ``size`` whose first axis is the batch, so the physiology
-core accepts either.
+The draw functions here are numba kernels that the task kernels call copy by
+copy (``draw_word``, ``draw_uniform``, ``draw_normals``); :class:`CopyStreams`
+holds the keys and counters of B copies and offers numpy Generator-like
+methods (``random``, ``uniform``, ``standard_normal``, ``integers``) whose
+``size`` starts with the batch, built on the same kernels.
 """
 
 from __future__ import annotations
@@ -18,23 +20,82 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from numba import njit
 
-_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _MIX1 = np.uint64(0xBF58476D1CE4E5B9)
 _MIX2 = np.uint64(0x94D049BB133111EB)
 _S30, _S27, _S31, _S11, _S32 = (np.uint64(s) for s in (30, 27, 31, 11, 32))
+_ONE = np.uint64(1)
 _LOW32 = np.uint64(0xFFFFFFFF)
+_INV53 = 1.0 / 9007199254740992.0
 _INV32 = 1.0 / 4294967296.0
-_TWO_PI = 2.0 * np.pi
-_OFFSETS: dict[int, np.ndarray] = {}  # per-copy word offsets times the golden step
+_TWO_PI = 2.0 * math.pi
 
 
-def _splitmix(x: np.ndarray) -> np.ndarray:
+@njit(cache=True)
+def splitmix(x):
+    """The SplitMix64 finaliser of one uint64 word."""
     x = x ^ (x >> _S30)
     x = x * _MIX1
     x = x ^ (x >> _S27)
     x = x * _MIX2
     return x ^ (x >> _S31)
+
+
+@njit(cache=True)
+def draw_word(keys, counters, b):
+    """The next random uint64 word of copy ``b`` (advances its counter)."""
+    x = splitmix(keys[b] + counters[b] * GOLDEN)
+    counters[b] += _ONE
+    return x
+
+
+@njit(cache=True)
+def draw_uniform(keys, counters, b):
+    """The next uniform float of copy ``b`` in [0, 1), with 53 random bits."""
+    return float(draw_word(keys, counters, b) >> _S11) * _INV53
+
+
+@njit(cache=True)
+def draw_normals(keys, counters, b, out):
+    """Fill ``out`` (n,) with standard normal draws of copy ``b`` (Box-Muller).
+
+    One word gives two 32-bit uniforms (u1 high, u2 low) and each pair gives two
+    normals: the cosine branches fill the first ceil(n / 2) entries, the sine
+    branches the rest, so a draw of n numbers takes ceil(n / 2) words.
+    """
+    count = out.shape[0]
+    pairs = (count + 1) // 2
+    for j in range(pairs):
+        word = draw_word(keys, counters, b)
+        u1 = float(word >> _S32) * _INV32
+        u2 = float(word & _LOW32) * _INV32
+        radius = math.sqrt(-2.0 * math.log1p(-u1))  # 1 - u1 in (0, 1]: the log is finite
+        angle = _TWO_PI * u2
+        out[j] = radius * math.cos(angle)
+        if pairs + j < count:
+            out[pairs + j] = radius * math.sin(angle)
+
+
+@njit(cache=True)
+def _fill_uniform(keys, counters, out):
+    for b in range(out.shape[0]):
+        for j in range(out.shape[1]):
+            out[b, j] = draw_uniform(keys, counters, b)
+
+
+@njit(cache=True)
+def _fill_normal(keys, counters, out):
+    for b in range(out.shape[0]):
+        draw_normals(keys, counters, b, out[b])
+
+
+def _batch_shape(size, batch: int) -> tuple[int, ...]:
+    size = (size,) if isinstance(size, (int, np.integer)) else tuple(size)
+    if not size or size[0] != batch:
+        raise ValueError(f"size {size} must start with the batch size {batch}")
+    return size
 
 
 class CopyStreams:
@@ -46,66 +107,29 @@ class CopyStreams:
     """
 
     def __init__(self, keys: np.ndarray):
-        self.keys = np.asarray(keys, dtype=np.uint64).reshape(-1)
+        self.keys = np.array(keys, dtype=np.uint64).reshape(-1)
         self.counter = np.zeros(self.keys.shape[0], dtype=np.uint64)
 
     @property
     def batch(self) -> int:
         return self.keys.shape[0]
 
-    def _words(self, per_copy: int) -> np.ndarray:
-        """(per_copy, B) random words: row j holds word j of every copy.
-
-        Laid out with the batch as the fast axis, because numpy broadcasts a short
-        row over a long column many times slower than the other way round.
-        """
-        steps = _OFFSETS.get(per_copy)
-        if steps is None:
-            steps = _OFFSETS.setdefault(
-                per_copy, (np.arange(per_copy, dtype=np.uint64) * _GOLDEN)[:, None])
-        with np.errstate(over="ignore"):
-            # Word j of copy b hashes key_b + (counter_b + j) * golden.
-            start = self.keys + self.counter * _GOLDEN
-            x = _splitmix(start + steps)
-        self.counter += np.uint64(per_copy)
-        return x
-
-    def _bits(self, size) -> np.ndarray:
-        size = (size,) if isinstance(size, (int, np.integer)) else tuple(size)
-        if not size or size[0] != self.batch:
-            raise ValueError(f"size {size} must start with the batch size {self.batch}")
-        return self._words(math.prod(size[1:])).T.reshape(size)
-
     def random(self, size) -> np.ndarray:
-        """Uniform floats in [0, 1) with 53 random bits."""
-        return (self._bits(size) >> _S11).astype(np.float64) * (1.0 / 9007199254740992.0)
+        """Uniform floats in [0, 1) with 53 random bits, shape ``size`` (batch first)."""
+        size = _batch_shape(size, self.batch)
+        out = np.empty((self.batch, math.prod(size[1:])))
+        _fill_uniform(self.keys, self.counter, out)
+        return out.reshape(size)
 
     def uniform(self, low=0.0, high=1.0, size=None) -> np.ndarray:
         return low + (np.asarray(high) - low) * self.random(size)
 
     def standard_normal(self, size) -> np.ndarray:
-        """Gaussian draws by the Box-Muller transform.
-
-        One 64-bit word gives two 32-bit uniforms, and each pair of uniforms gives
-        two normals (cosine and sine branch), so a draw of n numbers per copy
-        hashes ceil(n / 2) words.
-        """
-        size = (size,) if isinstance(size, (int, np.integer)) else tuple(size)
-        if not size or size[0] != self.batch:
-            raise ValueError(f"size {size} must start with the batch size {self.batch}")
-        count = math.prod(size[1:])
-        pairs = (count + 1) // 2
-        bits = self._words(pairs)  # (pairs, B)
-        u1 = (bits >> _S32).astype(np.float64) * _INV32
-        u2 = (bits & _LOW32).astype(np.float64) * _INV32
-        radius = np.sqrt(-2.0 * np.log1p(-u1))  # 1 - u1 in (0, 1]: the log is finite
-        # Single-precision trigonometry runs on numpy's SIMD kernels, several times
-        # faster than double; 24-bit angles are ample for simulation noise.
-        angle = (_TWO_PI * u2).astype(np.float32)
-        normals = np.empty((2 * pairs, self.batch))
-        np.multiply(radius, np.cos(angle), out=normals[:pairs])
-        np.multiply(radius, np.sin(angle), out=normals[pairs:])
-        return normals[:count].T.reshape(size)
+        """Standard normal draws (see :func:`draw_normals`), shape ``size``."""
+        size = _batch_shape(size, self.batch)
+        out = np.empty((self.batch, math.prod(size[1:])))
+        _fill_normal(self.keys, self.counter, out)
+        return out.reshape(size)
 
     def integers(self, low, high=None, size=None) -> np.ndarray:
         """Integers uniform in [low, high) (numpy's convention)."""
@@ -134,3 +158,15 @@ class CopyStreams:
 def key_from(generator: np.random.Generator) -> np.uint64:
     """Draw a stream key from a copy's Gymnasium ``np_random``."""
     return np.uint64(generator.integers(0, 2**63, dtype=np.int64))
+
+
+def as_streams(rng, batch: int) -> CopyStreams:
+    """``rng`` as B copy streams: CopyStreams as they are, a numpy Generator as
+    the source of B fresh keys."""
+    if isinstance(rng, CopyStreams):
+        if rng.batch != batch:
+            raise ValueError(f"streams of {rng.batch} copies given for a batch of {batch}")
+        return rng
+    if isinstance(rng, np.random.Generator):
+        return CopyStreams(np.array([key_from(rng) for _ in range(batch)], dtype=np.uint64))
+    raise TypeError(f"rng must be CopyStreams or a numpy Generator, not {type(rng).__name__}")

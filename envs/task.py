@@ -32,9 +32,9 @@ Common constructor arguments (every task accepts them; a family adds its own):
 from __future__ import annotations
 
 import difflib
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Any, ClassVar, NamedTuple
+from typing import Any, ClassVar
 
 import gymnasium as gym
 import numpy as np
@@ -44,6 +44,43 @@ from gymnasium.vector.utils import batch_space
 
 from needbench.envs import rendering
 from needbench.envs.drives import Drive, make_drive
+from needbench.envs.engine import (
+    ACTIVITY,
+    ALIVE,
+    AMBIENT,
+    BIAS,
+    BODY_FLAGS,
+    CHANNEL,
+    CLOCK,
+    COEFFICIENTS,
+    COUNTERS,
+    COUPLING,
+    COUPLING_BELOW,
+    DEVIATION,
+    DRIVE,
+    DRIVE_EXPONENTS,
+    DRIVE_TABLE,
+    ENGINE_SIZE,
+    FORCING,
+    GUT,
+    HAS_PERCEIVED,
+    IN_BAND,
+    INTAKE,
+    INTERNAL,
+    KEYS,
+    LEVEL,
+    OBSERVATION,
+    OPTIONS,
+    PERCEIVED,
+    REWARD,
+    SCRATCH,
+    SET_POINT,
+    TASK,
+    TERMINATED,
+    TRUNCATED,
+    USES_AMBIENT,
+    refresh,
+)
 from needbench.envs.errors import ActionError, ConfigError, check_choice
 from needbench.envs.physiology import BodyState, Physiology
 from needbench.envs.presets import preset as load_preset
@@ -51,33 +88,33 @@ from needbench.envs.rewards import RewardChannel
 from needbench.envs.streams import CopyStreams, key_from
 
 
-class Effects(NamedTuple):
-    """What the world does to B bodies in one step (arrays with a leading batch axis).
-
-    ``intake`` (B, K) true amounts consumed; ``activity`` (B,); ``ambient``
-    (B, K) or None for each need's default; ``forcing`` (B, K) or None;
-    ``task_reward`` (B,) extrinsic payoff; ``perceived`` (B, K) outcome as the
-    agent perceives it (sensory-estimate channel) or None; ``events`` named
-    (B, ...) arrays copied into ``info``.
-    """
-
-    intake: np.ndarray
-    activity: np.ndarray
-    task_reward: np.ndarray
-    ambient: np.ndarray | None = None
-    forcing: np.ndarray | None = None
-    perceived: np.ndarray | None = None
-    events: Mapping[str, np.ndarray] = {}
-
-
 class World:
     """The outside world of a task family, for B copies at once.
 
-    Subclasses set ``action_space`` (one copy's) and ``feature_names`` (the
-    world part of the observation) in ``__init__`` and implement ``initial``,
-    ``step`` and ``observe``. World state is a dict of arrays whose first axis is
-    the batch; all randomness comes from the ``rng`` argument (per-copy streams),
-    and every call draws the same count of numbers for every copy.
+    A subclass sets ``action_space`` (one copy's), ``feature_names``,
+    ``feature_low`` and ``feature_high`` (the world part of the observation)
+    in ``__init__``, and provides three compiled kernels as class attributes
+    (see ``envs/tasks/menu.py`` for the pattern):
+
+    * ``reset_kernel(mask, constants, state, engine)``: for every copy where
+      ``mask`` is true, a fresh body (:func:`~needbench.envs.engine.reset_body`)
+      and a fresh world, then its observation;
+    * ``step_kernel(actions, constants, state, events, engine)``: the world
+      acts for every copy (writing the engine's intake, activity, ambient,
+      forcing, task and perceived rows and its own events), then
+      :func:`~needbench.envs.engine.settle_all`, then the observations;
+    * ``observe_kernel(constants, state, engine)``: the observations alone.
+
+    ``constants()`` is the tuple of the world's parameters as arrays and
+    numbers, ``allocate(batch)`` its state arrays and ``allocate_events(batch)``
+    the arrays of the events it reports in ``info`` (each a dict whose order is
+    the kernels' tuple order). All randomness comes from the copies' streams
+    in the engine, and every step draws the same count of words for every copy.
+
+    The public face for agents and benchmarks: :meth:`feature_index`,
+    ``model()`` where the world has an outcome model, ``sources(state)`` where
+    it has places that serve needs. Nothing outside envs reads a world's
+    private fields.
     """
 
     #: Parameters of this world and their defaults (constructor keywords of the task).
@@ -85,28 +122,41 @@ class World:
     #: Needs a body has in this task unless the user names others.
     default_needs: ClassVar[tuple[str, ...]] = ("energy", "water", "temperature")
     spatial: ClassVar[bool] = False
+    reset_kernel: ClassVar[Callable]
+    step_kernel: ClassVar[Callable]
+    observe_kernel: ClassVar[Callable]
 
     action_space: spaces.Space
     feature_names: tuple[str, ...] = ()
     feature_low: np.ndarray
     feature_high: np.ndarray
+    #: Whether the world sets each need's ambient (else each need's own ambient holds).
+    uses_ambient: bool = False
+    #: Whether the world says how an outcome is perceived (the sensory channel reads it).
+    has_perceived: bool = False
 
     def __init__(self, physiology: Physiology, **params: Any):
         self.physiology = physiology
         for key, value in params.items():
             setattr(self, key, value)
 
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
+    def constants(self) -> tuple:
+        return ()
+
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
         return {}
 
-    def step(self, state: dict[str, np.ndarray], actions: np.ndarray, body: BodyState,
-             rng: CopyStreams) -> tuple[dict[str, np.ndarray], Effects]:
-        raise NotImplementedError
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {}
 
-    def observe(self, state: dict[str, np.ndarray]) -> np.ndarray:
-        """(B, W) world features; default: none."""
-        batch = next(iter(state.values())).shape[0] if state else 0
-        return np.zeros((batch, 0))
+    def feature_index(self, name: str) -> int:
+        """Column of world feature ``name`` in the world part of the observation."""
+        if name not in self.feature_names:
+            near = difflib.get_close_matches(name, self.feature_names, n=1)
+            hint = f" (did you mean {near[0]!r}?)" if near else ""
+            raise ConfigError("feature", name, "a world feature: "
+                              + ", ".join(self.feature_names) + hint)
+        return self.feature_names.index(name)
 
     def text(self, state: dict[str, np.ndarray], index: int) -> str:
         """A readable frame of copy ``index``'s world (ANSI render)."""
@@ -115,10 +165,6 @@ class World:
     def image(self, state: dict[str, np.ndarray], index: int) -> np.ndarray | None:
         """An (H, W, 3) uint8 picture of copy ``index``'s world, if it has one."""
         return None
-
-    def zeros(self, batch: int) -> np.ndarray:
-        """(B, K) zeros, a convenience for building Effects."""
-        return np.zeros((batch, self.physiology.num_needs))
 
 
 @dataclass(frozen=True)
@@ -166,22 +212,27 @@ def split_arguments(world_cls: type[World], defaults: Mapping[str, Any],
 
 
 class TaskCore:
-    """B copies of one task: world, body, drive and reward, stepped together.
+    """B copies of one task: world, body, drive and reward, stepped by compiled kernels.
 
     Attributes:
         physiology: the body (needs, couplings, dt).
         drive: the drive object every metric and agent must reuse.
-        reward_channel: how reward is made.
+        reward_channel: how reward is made (assignable: a wrapper may swap it).
         world: the family's outside world.
         batch: B.
+        state: the world state, a dict of (B, ...) arrays updated in place.
+        engine: the tuple of arrays the kernels share (``needbench.envs.engine``).
     """
 
     def __init__(self, world_cls: type[World], config: TaskConfig, world_params: dict[str, Any],
                  batch: int):
-        check_choice("on_lethal", config.on_lethal, ("terminate", "penalise"))
         check_choice("observation", config.observation, ("flat", "dict"))
-        if not isinstance(config.max_steps, (int, np.integer)) or config.max_steps < 1:
+        max_steps = config.max_steps
+        if (isinstance(max_steps, bool) or not isinstance(max_steps, (int, np.integer))
+                or max_steps < 1):
             raise ConfigError("max_steps", config.max_steps, "a whole number >= 1")
+        if not isinstance(config.interoception, (bool, np.bool_)):
+            raise ConfigError("interoception", config.interoception, "True or False")
         needs = config.needs if config.needs is not None else world_cls.default_needs
         body = load_preset(config.preset)
         self.physiology = body.physiology(needs, config.need_overrides, extra=config.extra_needs,
@@ -189,11 +240,9 @@ class TaskCore:
         self.config = config
         self.band = self.physiology.band
         self.need_names = self.physiology.names
-        self.drive: Drive = make_drive(config.drive, scale=self.band,
-                                       num_needs=self.physiology.num_needs,
+        k = self.physiology.num_needs
+        self.drive: Drive = make_drive(config.drive, scale=self.band, num_needs=k,
                                        **dict(config.drive_params))
-        self.reward_channel = RewardChannel(config.reward, config.drive_weight,
-                                            config.task_weight, config.sensory_bias)
         self.world = world_cls(self.physiology, **world_params)
         self.batch = batch
         self.max_steps = int(config.max_steps)
@@ -202,10 +251,64 @@ class TaskCore:
             self.physiology.set_point - self.physiology.lethal_low,
             self.physiology.lethal_high - self.physiology.set_point) / self.band)) * 2.0
         self.streams = CopyStreams(np.zeros(batch, dtype=np.uint64))
-        self.body: BodyState | None = None
-        self._drive_of: tuple[BodyState | None, np.ndarray | None] = (None, None)
-        self.state: dict[str, np.ndarray] = {}
-        self.t = np.zeros(batch, dtype=np.int64)
+        width = k + len(self.world.feature_names)
+        B = batch
+        engine: list[Any] = [None] * ENGINE_SIZE
+        for index, shape, dtype in (
+                (LEVEL, (B, k), np.float64), (GUT, (B, k), np.float64),
+                (SET_POINT, (B, k), np.float64), (DRIVE, (B,), np.float64),
+                (INTAKE, (B, k), np.float64), (ACTIVITY, (B,), np.float64),
+                (AMBIENT, (B, k), np.float64), (FORCING, (B, k), np.float64),
+                (TASK, (B,), np.float64), (PERCEIVED, (B, k), np.float64),
+                (REWARD, (B,), np.float64), (INTERNAL, (B,), np.float64),
+                (ALIVE, (B,), np.bool_), (TERMINATED, (B,), np.bool_),
+                (TRUNCATED, (B,), np.bool_), (CLOCK, (B,), np.int64),
+                (DEVIATION, (B, k), np.float64), (IN_BAND, (B,), np.bool_),
+                (OBSERVATION, (B, width), np.float32), (SCRATCH, (5, k), np.float64)):
+            engine[index] = np.zeros(shape, dtype)
+        engine[ALIVE][:] = True
+        physiology = self.physiology
+        engine[COEFFICIENTS] = physiology.coefficients
+        engine[COUPLING], engine[COUPLING_BELOW] = physiology.coupling, physiology.coupling_below
+        engine[BODY_FLAGS] = physiology.flags
+        engine[DRIVE_TABLE], engine[DRIVE_EXPONENTS] = self.drive.table(k), self.drive.exponents
+        engine[OPTIONS] = np.array([self.max_steps, self.deviation_limit, k], dtype=np.float64)
+        engine[USES_AMBIENT] = np.array([self.world.uses_ambient])
+        engine[HAS_PERCEIVED] = np.array([self.world.has_perceived])
+        engine[KEYS], engine[COUNTERS] = self.streams.keys, self.streams.counter
+        self._engine = engine
+        self.reward_channel = RewardChannel(config.reward, config.drive_weight,
+                                            config.task_weight, config.sensory_bias,
+                                            config.on_lethal, config.lethal_penalty)
+        self.state = self.world.allocate(batch)
+        self.events = self.world.allocate_events(batch)
+        self._state = tuple(self.state.values())
+        self._events = tuple(self.events.values())
+        self._constants = self.world.constants()
+        self._all = np.ones(batch, dtype=np.bool_)
+        self._started = False
+        # info: (name, array) pairs read after each step; the body's part first.
+        self._body_info = (("level", engine[LEVEL]), ("set_point", engine[SET_POINT]),
+                           ("deviation", engine[DEVIATION]), ("drive", engine[DRIVE]),
+                           ("in_band", engine[IN_BAND]))
+        self._step_info = self._body_info + (
+            ("reward_internal", engine[INTERNAL]), ("reward_task", engine[TASK]),
+            ("alive", engine[ALIVE]), ("intake", engine[INTAKE])) + tuple(self.events.items())
+
+    # --- the reward channel ---------------------------------------------------
+
+    @property
+    def reward_channel(self) -> RewardChannel:
+        return self._reward_channel
+
+    @reward_channel.setter
+    def reward_channel(self, channel: RewardChannel) -> None:
+        if not isinstance(channel, RewardChannel):
+            raise ConfigError("reward_channel", channel, "a RewardChannel")
+        vector, bias = channel.parameters(self.physiology.num_needs)
+        self._reward_channel = channel
+        self._engine[CHANNEL], self._engine[BIAS] = vector, bias
+        self.engine = tuple(self._engine)
 
     # --- spaces --------------------------------------------------------------
 
@@ -229,97 +332,74 @@ class TaskCore:
 
     # --- the batched functions ------------------------------------------------
 
+    @property
+    def body(self) -> BodyState | None:
+        """The bodies now: views of the engine's arrays (None before the first reset)."""
+        if not self._started:
+            return None
+        return BodyState(self.engine[LEVEL], self.engine[GUT], self.engine[SET_POINT])
+
+    @body.setter
+    def body(self, state: BodyState) -> None:
+        """Set the bodies from outside (tests, planners); drive and observation follow."""
+        for index, value in zip((LEVEL, GUT, SET_POINT), state, strict=True):
+            self.engine[index][...] = value
+        refresh(self.engine)
+        self._started = True
+
     def reset(self, keys: np.ndarray, mask: np.ndarray | None = None) -> None:
         """Start new episodes in all copies, or only where ``mask`` is true."""
         if mask is None:
-            self.streams = CopyStreams(keys)
-            self.body = self.physiology.initial(self.streams, self.batch)
-            self.state = self.world.initial(self.streams, self.batch)
-            self.t = np.zeros(self.batch, dtype=np.int64)
-            return
+            mask = self._all
         self.streams.rekey(mask, keys)
-        sub = self.streams.subset(mask)
-        count = int(mask.sum())
-        fresh_body = self.physiology.initial(sub, count)
-        fresh_world = self.world.initial(sub, count)
-        self.streams.merge(mask, sub)
-        for old, new in zip(self.body, fresh_body, strict=True):
-            old[mask] = new
-        self._drive_of = (None, None)  # the bodies changed in place
-        for key, value in fresh_world.items():
-            self.state[key][mask] = value
-        self.t[mask] = 0
+        self.world.reset_kernel(mask, self._constants, self._state, self.engine)
+        self._started = True
+
+    def step(self, actions: np.ndarray) -> None:
+        """Advance every copy one step (validated actions, batched); results stay in
+        the engine's arrays (see :meth:`outcome` and :meth:`info`)."""
+        self.world.step_kernel(actions, self._constants, self._state, self._events, self.engine)
 
     def observe(self) -> np.ndarray | dict[str, np.ndarray]:
-        """(B, D) float32 observations (or a dict of them)."""
-        internal = np.clip(self.physiology.deviation(self.body), -self.deviation_limit,
-                           self.deviation_limit).astype(np.float32)
-        world = np.asarray(self.world.observe(self.state), dtype=np.float32)
+        """(B, D) float32 observations (or a dict of them), computed afresh."""
+        self.world.observe_kernel(self._constants, self._state, self.engine)
+        return self.observation()
+
+    def observation(self) -> np.ndarray | dict[str, np.ndarray]:
+        """A copy of the observations the last reset or step wrote."""
+        obs = self.engine[OBSERVATION]
+        k = self.physiology.num_needs
         if self.config.observation == "dict":
-            parts = {"world": world}
+            parts = {"world": obs[:, k:].copy()}
             if self.config.interoception:
-                parts = {"internal": internal, **parts}
+                parts = {"internal": obs[:, :k].copy(), **parts}
             return parts
         if not self.config.interoception:
-            return world
-        return np.concatenate([internal, world], axis=1)
+            return obs[:, k:].copy()
+        return obs.copy()
+
+    def outcome(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Copies of the last step's (reward, terminated, truncated), each (B,)."""
+        engine = self.engine
+        return engine[REWARD].copy(), engine[TERMINATED].copy(), engine[TRUNCATED].copy()
 
     def current_drive(self) -> np.ndarray:
-        """(B,) D(h) of the current bodies, computed once per step and cached.
-
-        The cache is tied to the body object, so a body set from outside (or
-        changed in place by a reset) is scored afresh.
-        """
-        body, drive = self._drive_of
-        if body is not self.body:
-            drive = self.drive(self.body.level, self.body.set_point)
-            self._drive_of = (self.body, drive)
-        return drive
+        """(B,) D(h) of the current bodies."""
+        return self.engine[DRIVE]
 
     def body_info(self) -> dict[str, np.ndarray]:
-        """The internal-state part of ``info``, batched."""
-        body = self.body
-        return {
-            "level": body.level.copy(),
-            "set_point": body.set_point.copy(),
-            "deviation": self.physiology.deviation(body),
-            "drive": self.current_drive().copy(),
-            "in_band": self.physiology.in_band(body),
-        }
+        """The internal-state part of ``info``, batched (copies)."""
+        return {name: value.copy() for name, value in self._body_info}
 
-    def step(self, actions: np.ndarray):
-        """Advance every copy one step. Returns (reward, terminated, truncated, info), batched."""
-        before = self.body
-        self.state, effects = self.world.step(self.state, actions, before, self.streams)
-        after = self.physiology.transition(
-            before, self.streams, intake=effects.intake, activity=effects.activity,
-            ambient=effects.ambient, forcing=effects.forcing)
-        alive = self.physiology.alive(after)
-        if self.config.on_lethal == "penalise":
-            # Hold the level just inside its lethal bounds; the episode goes on.
-            margin = 1e-6 * self.band
-            level = np.clip(after.level, self.physiology.lethal_low + margin,
-                            self.physiology.lethal_high - margin)
-            after = BodyState(level, after.gut, after.set_point)
-        parts = self.reward_channel.compute(
-            self.drive, before, after, intake=effects.intake, alive=alive,
-            task=effects.task_reward, perceived=effects.perceived,
-            drive_before=self.current_drive())
-        reward = parts.total - self.config.lethal_penalty * (~alive)
-        self.body = after
-        self._drive_of = (after, parts.drive_after)
-        self.t += 1
-        terminated = ~alive if self.config.on_lethal == "terminate" else np.zeros_like(alive)
-        truncated = (self.t >= self.max_steps) & ~terminated
-        info = self.body_info()
-        info.update(
-            reward_internal=parts.internal,
-            reward_task=parts.task,
-            alive=alive,
-            intake=np.asarray(effects.intake, dtype=np.float64),
-        )
-        info.update(effects.events)
-        return reward.astype(np.float64), terminated, truncated, info
+    def info(self) -> dict[str, np.ndarray]:
+        """The last step's ``info``, batched (copies): body, reward parts, events."""
+        return {name: value.copy() for name, value in self._step_info}
+
+    def single_info(self, after_step: bool) -> dict[str, Any]:
+        """Copy 0's ``info`` with 0-d values as Python scalars (the single env)."""
+        items = self._step_info if after_step else self._body_info
+        return {name: value[0].item() if value.ndim == 1 else value[0].copy()
+                for name, value in items}
 
     def finite_model(self, resolution: float = 0.25):
         """The task as a finite MDP on a lattice of internal states (outcome tasks only).
@@ -342,19 +422,13 @@ class TaskCore:
                 raise ActionError("actions contain NaN or inf")
             if np.any(arr < space.low) or np.any(arr > space.high):
                 raise ActionError(f"actions outside [{space.low.min()}, {space.high.max()}]")
-            return arr.astype(np.float64)
+            return np.ascontiguousarray(arr, dtype=np.float64)
         arr = np.asarray(actions)
         if arr.dtype.kind == "f" and np.all(np.isfinite(arr)) and np.all(arr == np.round(arr)):
             arr = arr.astype(np.int64)
         if arr.dtype.kind not in "iu" or not space.contains(arr.astype(space.dtype)):
             raise ActionError(f"actions {actions!r} are not in {space}")
-        return arr.astype(np.int64)
-
-
-def _unbatch(info: dict[str, np.ndarray]) -> dict[str, Any]:
-    """Copy 0 of a batched info, with 0-d values as Python scalars."""
-    return {key: value[0].item() if value.ndim == 1 else value[0]
-            for key, value in info.items()}
+        return np.ascontiguousarray(arr, dtype=np.int64)
 
 
 class NeedEnv(gym.Env):
@@ -373,21 +447,26 @@ class NeedEnv(gym.Env):
         self.observation_space = self.core.observation_space()
         self.action_space = self.core.world.action_space
         self._batched_actions = batch_space(self.action_space, 1)
+        self._action = np.zeros(1, np.int64)
         self._needs_reset = True
+        engine = self.core.engine
+        self._flags = (engine[REWARD], engine[TERMINATED], engine[TRUNCATED])
 
     def reset(self, *, seed: int | None = None, options: dict | None = None):
         super().reset(seed=seed)
         self.core.reset(np.array([key_from(self.np_random)], dtype=np.uint64))
         self._needs_reset = False
-        return self._observation(), _unbatch(self.core.body_info())
+        return self._observation(), self.core.single_info(after_step=False)
 
     def step(self, action):
         if self._needs_reset:
             raise RuntimeError("call reset() before step() (and after an episode ends)")
-        reward, terminated, truncated, info = self.core.step(self._one_action(action))
-        self._needs_reset = bool(terminated[0] or truncated[0])
-        return (self._observation(), float(reward[0]), bool(terminated[0]),
-                bool(truncated[0]), _unbatch(info))
+        self.core.step(self._one_action(action))
+        reward, terminated, truncated = self._flags
+        terminated, truncated = bool(terminated[0]), bool(truncated[0])
+        self._needs_reset = terminated or truncated
+        return (self._observation(), float(reward[0]), terminated, truncated,
+                self.core.single_info(after_step=True))
 
     def _one_action(self, action) -> np.ndarray:
         """Validate one action and return it as a batch of one."""
@@ -396,17 +475,19 @@ class NeedEnv(gym.Env):
             # The common case first: a plain or numpy integer inside the range.
             if isinstance(action, (int, np.integer)) and not isinstance(action, (bool, np.bool_)):
                 if space.start <= action < space.start + space.n:
-                    return np.array([action], dtype=np.int64)
+                    self._action[0] = action
+                    return self._action
             elif isinstance(action, np.ndarray) and action.shape == () and \
                     action.dtype.kind in "iu" and space.contains(action):
-                return action.reshape(1).astype(np.int64)
+                self._action[0] = action
+                return self._action
             raise ActionError(f"action {action!r} is not one integer in {space}")
         if np.shape(action) != space.shape:
             raise ActionError(f"action of shape {np.shape(action)} given; expected {space.shape}")
         return self.core.validate_actions(np.asarray(action)[None], self._batched_actions)
 
     def _observation(self):
-        obs = self.core.observe()
+        obs = self.core.observation()
         if isinstance(obs, dict):
             return {k: v[0] for k, v in obs.items()}
         return obs[0]
@@ -466,28 +547,26 @@ class NeedVectorEnv(VectorEnv):
         keys = np.array([key_from(g) for g in self._copy_rngs], dtype=np.uint64)
         self.core.reset(keys)
         self._done[:] = False
-        return self.core.observe(), self.core.body_info()
+        return self.core.observation(), self.core.body_info()
 
     def step(self, actions):
-        batched = self.core.validate_actions(actions, self.action_space)
-        resetting = self._done.copy()
-        reward, terminated, truncated, info = self.core.step(batched)
+        core = self.core
+        batched = core.validate_actions(actions, self.action_space)
+        resetting = self._done
+        core.step(batched)
         if resetting.any():
             keys = np.array([key_from(self._copy_rngs[i]) for i in np.flatnonzero(resetting)],
                             dtype=np.uint64)
-            self.core.reset(keys, resetting)
-            fresh = self.core.body_info()
-            for key, value in info.items():
-                if key in fresh:
-                    value[resetting] = fresh[key][resetting]
-                else:
-                    value[resetting] = 0
-            info["alive"][resetting] = True
-            reward[resetting] = 0.0
-            terminated[resetting] = False
-            truncated[resetting] = False
+            core.reset(keys, resetting)
+            engine = core.engine
+            for index in (INTERNAL, TASK, INTAKE, REWARD, TERMINATED, TRUNCATED):
+                engine[index][resetting] = 0
+            engine[ALIVE][resetting] = True
+            for value in core.events.values():
+                value[resetting] = 0
+        reward, terminated, truncated = core.outcome()
         self._done = terminated | truncated
-        return self.core.observe(), reward, terminated, truncated, info
+        return core.observation(), reward, terminated, truncated, core.info()
 
     def render(self):
         if self.render_mode is None:

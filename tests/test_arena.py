@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 import needbench.envs  # noqa: F401  (registers the tasks)
-from needbench.envs.arena import ISLAND_SOURCES, ArenaEnv, ArenaVectorEnv
+from needbench.envs.tasks.arena import ISLAND_SOURCES, ArenaEnv, ArenaVectorEnv
 from needbench.envs.errors import ConfigError
 
 

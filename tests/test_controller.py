@@ -11,7 +11,7 @@ from needbench.agents.base import Agent
 from needbench.agents.controller import SetpointController
 from needbench.agents.random_agent import RandomAgent
 from needbench.envs.errors import ConfigError
-from needbench.envs.menu import HUT_PANTRY
+from needbench.envs.tasks.menu import HUT_PANTRY
 
 #: The hut pantry without the stove soup, the one item whose outcome is left to chance.
 SURE_PANTRY = tuple(item for item in HUT_PANTRY if item[0] != "stove soup")
@@ -91,7 +91,7 @@ def test_forage_move_heads_for_the_world_nearest_source():
     env = gym.make("needbench/Forage-v0", pillar_chance=0.0)
     controller = SetpointController(env.observation_space, env.action_space).learn(env, 0, 0)
     core = env.unwrapped.core
-    from needbench.envs.forage import MOVES
+    from needbench.envs.tasks.forage import MOVES
 
     for seed in range(8):
         env.reset(seed=seed)

@@ -218,7 +218,7 @@ def test_copies_from_a_vector_env_follow_the_seeding_convention():
 
 
 def test_single_env_without_spec_needs_one_copy():
-    from needbench.envs.menu import MenuEnv
+    from needbench.envs.tasks.menu import MenuEnv
 
     env = MenuEnv()
     with pytest.raises(ConfigError, match="env.spec"):

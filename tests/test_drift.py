@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 import needbench.envs  # noqa: F401  (registers the tasks)
-from needbench.envs.drift import ALLOSTASIS_RATE, VALLEY_ITEMS, DriftEnv, DriftVectorEnv
+from needbench.envs.tasks.drift import ALLOSTASIS_RATE, VALLEY_ITEMS, DriftEnv, DriftVectorEnv
 from needbench.envs.errors import ConfigError
 
 REST, SEEDS, BROOK, APPLES = range(4)

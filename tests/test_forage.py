@@ -11,7 +11,7 @@ from scipy import ndimage
 
 import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.envs.errors import ConfigError
-from needbench.envs.forage import (
+from needbench.envs.tasks.forage import (
     FOOD,
     MOVES,
     SAND,

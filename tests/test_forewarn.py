@@ -8,7 +8,7 @@ import pytest
 
 import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.envs.errors import ConfigError
-from needbench.envs.forewarn import (
+from needbench.envs.tasks.forewarn import (
     DRINK,
     EAT,
     PUT_ON,

@@ -8,7 +8,7 @@ import pytest
 
 import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.envs.errors import ConfigError
-from needbench.envs.gamble import DEEP_NET, HANDLINE, REST, GambleEnv, GambleVectorEnv
+from needbench.envs.tasks.gamble import DEEP_NET, HANDLINE, REST, GambleEnv, GambleVectorEnv
 from needbench.envs.physiology import BodyState
 
 #: A body whose catch acts at once and that does not drain, so one step moves

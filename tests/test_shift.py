@@ -9,7 +9,7 @@ from scipy.optimize import brentq
 
 import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.envs.errors import ConfigError
-from needbench.envs.shift import DRINK, EAT, SHADE, WORK, ShiftEnv, ShiftVectorEnv
+from needbench.envs.tasks.shift import DRINK, EAT, SHADE, WORK, ShiftEnv, ShiftVectorEnv
 
 
 def always_work(observations, k):

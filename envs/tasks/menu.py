@@ -8,11 +8,23 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
+from numba import njit
 
+from needbench.envs.engine import (
+    COUNTERS,
+    INTAKE,
+    KEYS,
+    OBSERVATION,
+    OPTIONS,
+    WORLD_OFFSET,
+    observe_internal,
+    reset_body,
+    settle_all,
+)
 from needbench.envs.errors import ConfigError, check_range
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.streams import CopyStreams
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+from needbench.envs.physiology import Physiology
+from needbench.envs.streams import draw_uniform
+from needbench.envs.task import NeedEnv, NeedVectorEnv, World
 
 #: The pantry of an invented mountain hut. Each item is a lottery over
 #: outcomes: (probability, {need: amount}) in the need's units (band units in
@@ -50,11 +62,86 @@ def outcome_tables(items, physiology: Physiology):
     return cumulative, effects
 
 
+@njit(cache=True)
+def draw_outcome(b, item, cumulative, effects, intake, keys, counters):
+    """Draw copy ``b``'s outcome of ``item`` and write its intake; return the outcome index.
+
+    One uniform u per step; the outcome is the number of cumulative
+    probabilities at or below u (impossible padded outcomes never win).
+    """
+    u = draw_uniform(keys, counters, b)
+    outcome = 0
+    for j in range(cumulative.shape[1]):
+        if u >= cumulative[item, j]:
+            outcome += 1
+    outcome = min(outcome, cumulative.shape[1] - 1)
+    for k in range(intake.shape[1]):
+        intake[b, k] = effects[item, outcome, k]
+    return outcome
+
+
+@njit(cache=True)
+def observe_last_outcome(b, last_outcome, engine):
+    """Copy ``b``'s observation: deviations, then what the last item delivered."""
+    observe_internal(engine, b)
+    observation = engine[OBSERVATION]
+    offset = int(engine[OPTIONS][WORLD_OFFSET])
+    for k in range(last_outcome.shape[1]):
+        observation[b, offset + k] = np.float32(last_outcome[b, k])
+
+
+@njit(cache=True)
+def record_last_outcome(b, last_outcome, intake, band):
+    for k in range(intake.shape[1]):
+        last_outcome[b, k] = intake[b, k] / band[k]
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    (last_outcome,) = state
+    for b in range(mask.shape[0]):
+        if mask[b]:
+            reset_body(engine, b)
+            last_outcome[b, :] = 0.0
+            observe_last_outcome(b, last_outcome, engine)
+
+
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    cumulative, effects, band = constants
+    (last_outcome,) = state
+    item_event, outcome_event = events
+    intake = engine[INTAKE]
+    for b in range(actions.shape[0]):
+        item = actions[b]
+        outcome_event[b] = draw_outcome(b, item, cumulative, effects, intake, engine[KEYS],
+                                        engine[COUNTERS])
+        item_event[b] = item
+        record_last_outcome(b, last_outcome, intake, band)
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_last_outcome(b, last_outcome, engine)
+
+
+@njit(cache=True)
+def _observe(constants, state, engine):
+    (last_outcome,) = state
+    for b in range(last_outcome.shape[0]):
+        observe_last_outcome(b, last_outcome, engine)
+
+
 class MenuWorld(World):
-    """Items are lotteries over outcomes; no space, no time-varying world."""
+    """Items are lotteries over outcomes; no space, no time-varying world.
+
+    State: ``last_outcome`` (B, K) what the last item delivered, in band units.
+    Events in ``info``: ``item`` taken and ``outcome`` index drawn.
+    """
 
     parameters = {"items": HUT_PANTRY}
     default_needs = ("energy", "water")
+    reset_kernel = staticmethod(_reset)
+    step_kernel = staticmethod(_step)
+    observe_kernel = staticmethod(_observe)
 
     def __init__(self, physiology: Physiology, items: Sequence = HUT_PANTRY):
         super().__init__(physiology)
@@ -68,25 +155,14 @@ class MenuWorld(World):
         self.feature_low = np.full(physiology.num_needs, -limit)
         self.feature_high = np.full(physiology.num_needs, limit)
 
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
+    def constants(self) -> tuple:
+        return (self.cumulative, self.effects, self.physiology.band)
+
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
         return {"last_outcome": np.zeros((batch, self.physiology.num_needs))}
 
-    def draw(self, actions: np.ndarray, rng: CopyStreams) -> tuple[np.ndarray, np.ndarray]:
-        """Outcome index (B,) and intake (B, K) of each copy's chosen item."""
-        u = rng.random((actions.shape[0], 1))
-        outcome = np.sum(u >= self.cumulative[actions], axis=1)
-        outcome = np.minimum(outcome, self.cumulative.shape[1] - 1)
-        return outcome, self.effects[actions, outcome]
-
-    def step(self, state, actions, body: BodyState, rng: CopyStreams):
-        outcome, intake = self.draw(actions, rng)
-        batch = actions.shape[0]
-        effects = Effects(intake=intake, activity=np.zeros(batch), task_reward=np.zeros(batch),
-                          events={"item": actions.copy(), "outcome": outcome})
-        return {"last_outcome": intake / self.physiology.band}, effects
-
-    def observe(self, state):
-        return state["last_outcome"]
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {"item": np.zeros(batch, np.int64), "outcome": np.zeros(batch, np.int64)}
 
     def text(self, state, index):
         effect = ", ".join(f"{n} {v:+.2f}" for n, v in
@@ -94,8 +170,8 @@ class MenuWorld(World):
         return f"last outcome (band units): {effect}"
 
     def model(self) -> dict[str, Any]:
-        """The known outcome model, for planners and controllers: names, cumulative
-        probabilities (I, O) and effects (I, O, K) in need units."""
+        """The known outcome model, for planners and controllers: names, probabilities
+        (I, O) and effects (I, O, K) in need units."""
         probabilities = np.diff(self.cumulative, axis=1, prepend=0.0)
         return {"items": self.item_names, "probabilities": probabilities,
                 "effects": self.effects}

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from needbench.envs.errors import ConfigError, check_finite
-from needbench.envs.menu import MenuWorld
+from needbench.envs.tasks.menu import MenuWorld
 from needbench.envs.physiology import BodyState, Physiology
 from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv
 

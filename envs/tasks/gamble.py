@@ -8,7 +8,7 @@ import numpy as np
 
 from needbench.envs.drives import Drive
 from needbench.envs.errors import ConfigError, check_positive, check_range
-from needbench.envs.menu import MenuWorld
+from needbench.envs.tasks.menu import MenuWorld
 from needbench.envs.physiology import BodyState, Physiology
 from needbench.envs.task import NeedEnv, NeedVectorEnv
 
@@ -34,7 +34,7 @@ def skiff_items(need: str, safe_amount: float, risky_probability: float) -> tupl
 class GambleWorld(MenuWorld):
     """Three lotteries (rest, sure, risky with the same mean) over one need.
 
-    Reuses :class:`~needbench.envs.menu.MenuWorld` for drawing outcomes, the
+    Reuses :class:`~needbench.envs.tasks.menu.MenuWorld` for drawing outcomes, the
     observation (what the last choice delivered) and :meth:`model`.
     """
 
