@@ -8,8 +8,12 @@ continuous next level is then spread over the 2^K surrounding lattice points
 with multilinear (barycentric) weights, which keeps the expected drift exact
 even when one step moves a level by much less than the lattice spacing
 (Munos & Moore 2002, "Variable resolution discretization in optimal control").
-Rewards are the task's own reward channel on the exact next state. A level that
-leaves its lethal bounds leads to an absorbing terminal state.
+Rewards are the task's own reward channel on the exact next state, assembled
+as a task step assembles them (:meth:`~needbench.envs.rewards.RewardChannel.outcome`:
+lethal penalty and, under ``on_lethal="penalise"``, the level held inside its
+bounds). Under ``"terminate"`` a level that leaves its lethal bounds leads to an
+absorbing terminal state; under ``"penalise"`` the held level is spread over the
+lattice like any other.
 
 The model ignores the gut compartment, noise and set-point adaptation, so it
 is only built for bodies without them; anything else raises ConfigError.
@@ -92,12 +96,14 @@ def lattice_model(core, resolution: float = 0.25) -> FiniteModel:
     intake = np.tile(effects.reshape(-1, k), (n_states, 1))
     batch = start.shape[0]
     before = BodyState(start, np.zeros_like(start), np.broadcast_to(body.set_point, start.shape))
-    after = body.transition(before, intake=intake, activity=np.zeros(batch))
-    alive = body.alive(after)
-    parts = core.reward_channel.compute(core.drive, before, after, intake=intake, alive=alive,
-                                        task=np.zeros(batch))
+    moved = body.transition(before, intake=intake, activity=np.zeros(batch))
+    outcome = core.reward_channel.outcome(body, core.drive, before, moved, intake=intake,
+                                          task=np.zeros(batch))
+    after = outcome.body
+    # Under "penalise" the episode goes on from the held level: nothing dies.
+    alive = outcome.alive | (core.reward_channel.on_lethal == "penalise")
     weight = np.tile(probabilities.reshape(-1), n_states)  # (batch,)
-    reward = (parts.total * weight).reshape(n_states, n_actions, n_outcomes).sum(axis=2)
+    reward = (outcome.reward * weight).reshape(n_states, n_actions, n_outcomes).sum(axis=2)
 
     # Multilinear weights of the next level over its 2^K surrounding lattice points.
     lower, frac = [], []

@@ -383,6 +383,11 @@ class TaskCore:
         engine = self.engine
         return engine[REWARD].copy(), engine[TERMINATED].copy(), engine[TRUNCATED].copy()
 
+    @property
+    def t(self) -> np.ndarray:
+        """(B,) steps since each copy's episode began."""
+        return self.engine[CLOCK]
+
     def current_drive(self) -> np.ndarray:
         """(B,) D(h) of the current bodies."""
         return self.engine[DRIVE]

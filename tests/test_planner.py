@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from types import SimpleNamespace
 
 import gymnasium as gym
@@ -273,6 +274,37 @@ def test_planner_on_menu_uses_the_tasks_lattice_model_and_saves_its_state_map(tm
     loaded = Agent.load(path)
     # The saved lattice table reproduces the model's state_of (nearest lattice point).
     np.testing.assert_array_equal(loaded.act(observations), agent.act(observations))
+
+
+def test_lattice_rewards_and_planner_values_follow_the_tasks_lethal_rule():
+    import needbench.envs  # noqa: F401  (registers the tasks)
+
+    kwargs = {"lethal_penalty": 5.0,
+              "need_overrides": {"energy": {"drain": 0.6, "uptake_rate": math.inf}}}
+    envs = {rule: gym.make("needbench/Menu-v0", on_lethal=rule, **kwargs)
+            for rule in ("terminate", "penalise")}
+    models = {rule: env.unwrapped.core.finite_model(resolution=0.5) for rule, env in envs.items()}
+    terminate, penalise = models["terminate"], models["penalise"]
+    edge = np.argmin(terminate.levels[:, 0])  # the hungriest lattice point
+    # Under "terminate" resting at the edge leads to death; under "penalise" the
+    # level is held at the bound and nothing dies (no mass on the death state).
+    assert terminate.transition[edge, 0, -1] > 0.5
+    assert np.all(penalise.transition[:-1, :, -1] == 0.0)
+    # The step that crosses the bound pays the penalty under both rules.
+    assert terminate.reward[edge, 0] < -4.0 and penalise.reward[edge, 0] < -4.0
+    # The task's own step under "penalise" pays what the model says.
+    env = envs["penalise"]
+    env.reset(seed=0)
+    core = env.unwrapped.core
+    core.body = core.body._replace(level=penalise.levels[edge:edge + 1].copy())
+    _, reward, *_ = env.step(0)
+    assert reward == pytest.approx(penalise.reward[edge, 0], abs=1e-12)
+    # Death ends the penalties under "terminate"; held at the bound, a body that
+    # only rests keeps paying them, so that policy is worth less under "penalise".
+    mdps = {rule: mdp_from_env(env, 0.9, resolution=0.5).mdp for rule, env in envs.items()}
+    rest = {rule: policy_evaluation(mdp, np.zeros(mdp.transition.shape[0], np.int64))
+            for rule, mdp in mdps.items()}
+    assert rest["penalise"][edge] < rest["terminate"][edge] - 5.0
 
 
 # --- validation -----------------------------------------------------------------------------

@@ -5,12 +5,19 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+from numba import njit
 
 from needbench.envs.drives import Drive
+from needbench.envs.engine import COUNTERS, INTAKE, KEYS, settle_all
 from needbench.envs.errors import ConfigError, check_positive, check_range
-from needbench.envs.tasks.menu import MenuWorld
 from needbench.envs.physiology import BodyState, Physiology
 from needbench.envs.task import NeedEnv, NeedVectorEnv
+from needbench.envs.tasks.menu import (
+    MenuWorld,
+    draw_outcome,
+    observe_last_outcome,
+    record_last_outcome,
+)
 
 #: Item indices of the skiff's three choices (the action values).
 REST, HANDLINE, DEEP_NET = 0, 1, 2
@@ -31,6 +38,24 @@ def skiff_items(need: str, safe_amount: float, risky_probability: float) -> tupl
     )
 
 
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    cumulative, effects, band, deep_net = constants
+    (last_outcome,) = state
+    item_event, outcome_event, risky_event = events
+    intake = engine[INTAKE]
+    for b in range(actions.shape[0]):
+        item = actions[b]
+        outcome_event[b] = draw_outcome(b, item, cumulative, effects, intake, engine[KEYS],
+                                        engine[COUNTERS])
+        item_event[b] = item
+        risky_event[b] = item == deep_net
+        record_last_outcome(b, last_outcome, intake, band)
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_last_outcome(b, last_outcome, engine)
+
+
 class GambleWorld(MenuWorld):
     """Three lotteries (rest, sure, risky with the same mean) over one need.
 
@@ -40,6 +65,7 @@ class GambleWorld(MenuWorld):
 
     parameters = {"need": "energy", "safe_amount": 0.5, "risky_probability": 1.0 / 3.0}
     default_needs = ("energy",)
+    step_kernel = staticmethod(_step)
 
     def __init__(self, physiology: Physiology, need: str = "energy", safe_amount: float = 0.5,
                  risky_probability: float = 1.0 / 3.0):
@@ -54,9 +80,11 @@ class GambleWorld(MenuWorld):
         self.safe_amount = safe_amount
         self.risky_probability = risky_probability
 
-    def step(self, state, actions, body: BodyState, rng):
-        next_state, effects = super().step(state, actions, body, rng)
-        return next_state, effects._replace(events={**effects.events, "risky": actions == DEEP_NET})
+    def constants(self) -> tuple:
+        return (*super().constants(), DEEP_NET)
+
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {**super().allocate_events(batch), "risky": np.zeros(batch, np.bool_)}
 
     def expected_drive_reduction(self, drive: Drive, body: BodyState) -> np.ndarray:
         """(B, 3) expected one-step drive reduction E[D(h_t) - D(h_{t+1})] of each choice.

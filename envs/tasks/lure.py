@@ -7,11 +7,18 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+from numba import njit
 
+from needbench.envs.engine import COUNTERS, INTAKE, KEYS, PERCEIVED, settle_all
 from needbench.envs.errors import ConfigError, check_finite
-from needbench.envs.tasks.menu import MenuWorld
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv
+from needbench.envs.physiology import Physiology
+from needbench.envs.task import NeedEnv, NeedVectorEnv
+from needbench.envs.tasks.menu import (
+    MenuWorld,
+    draw_outcome,
+    observe_last_outcome,
+    record_last_outcome,
+)
 
 #: The stalls of an invented winter fair on a frozen lake: lotteries over
 #: outcomes, (probability, {need: amount}) in band units of the abstract preset.
@@ -28,6 +35,28 @@ FAIR_STALLS: tuple[tuple[str, tuple[tuple[float, Mapping[str, float]], ...]], ..
 FAIR_LURES: Mapping[str, Mapping[str, float]] = {"honey fudge": {"energy": -0.6}}
 
 
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    cumulative, effects, band, perceived_effects, is_lure = constants
+    (last_outcome,) = state
+    item_event, outcome_event, lure_event, perceived_event = events
+    intake, perceived = engine[INTAKE], engine[PERCEIVED]
+    for b in range(actions.shape[0]):
+        item = actions[b]
+        outcome = draw_outcome(b, item, cumulative, effects, intake, engine[KEYS],
+                               engine[COUNTERS])
+        for k in range(intake.shape[1]):
+            perceived[b, k] = perceived_effects[item, outcome, k]
+            perceived_event[b, k] = perceived_effects[item, outcome, k]
+        item_event[b] = item
+        outcome_event[b] = outcome
+        lure_event[b] = is_lure[item]
+        record_last_outcome(b, last_outcome, intake, band)
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_last_outcome(b, last_outcome, engine)
+
+
 class LureWorld(MenuWorld):
     """Menu items whose perceived outcome is the true one plus a per-item bias.
 
@@ -40,6 +69,8 @@ class LureWorld(MenuWorld):
 
     parameters = {"items": FAIR_STALLS, "lures": FAIR_LURES}
     default_needs = ("energy", "water")
+    has_perceived = True
+    step_kernel = staticmethod(_step)
 
     def __init__(self, physiology: Physiology, items: Sequence = FAIR_STALLS,
                  lures: Mapping[str, Mapping[str, float]] = FAIR_LURES):
@@ -60,15 +91,12 @@ class LureWorld(MenuWorld):
         delivers = np.any(self.effects != 0, axis=2, keepdims=True)
         self.perceived_effects = self.effects + np.where(delivers, self.bias[:, None, :], 0.0)
 
-    def step(self, state, actions, body: BodyState, rng):
-        outcome, intake = self.draw(actions, rng)
-        batch = actions.shape[0]
-        perceived = self.perceived_effects[actions, outcome]
-        events = {"item": actions.copy(), "outcome": outcome, "lure": self.is_lure[actions],
-                  "perceived_intake": perceived}
-        effects = Effects(intake=intake, activity=np.zeros(batch), task_reward=np.zeros(batch),
-                          perceived=perceived, events=events)
-        return {"last_outcome": intake / self.physiology.band}, effects
+    def constants(self) -> tuple:
+        return (*super().constants(), self.perceived_effects, self.is_lure)
+
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {**super().allocate_events(batch), "lure": np.zeros(batch, np.bool_),
+                "perceived_intake": np.zeros((batch, self.physiology.num_needs))}
 
     def text(self, state, index):
         lures = ", ".join(n for n, lure in zip(self.item_names, self.is_lure, strict=True) if lure)
