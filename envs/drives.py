@@ -24,8 +24,8 @@ from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.errors import ConfigError, check_positive
 
 
@@ -51,7 +51,7 @@ WEIGHT_BELOW, WEIGHT_ABOVE, SCALE = range(3)
 N_BELOW, N_ABOVE, ROOT = range(3)
 
 
-@njit(cache=True)
+@inline_kernel
 def power(x, p):
     """x ** p for x >= 0, with multiplication or sqrt for the common exponents
     (a float power costs an exp and a log; the exponents used are small)."""
@@ -69,17 +69,19 @@ def power(x, p):
     return x ** p
 
 
-@njit(cache=True)
-def drive_of(level, set_point, table, exponents):
-    """The drive of one body: (sum_i w_i(d_i) |d_i|^n(d_i))^(1/m), d = (h* - h)/s.
+@inline_kernel
+def drive_of(level, row, set_point, set_point_row, table, exponents):
+    """The drive of the body in ``level[row]`` with set points ``set_point[set_point_row]``:
+    (sum_i w_i(d_i) |d_i|^n(d_i))^(1/m), d = (h* - h)/s.
 
     Every family is this one form: a deficit (d > 0) takes the ``below``
     weight and exponent, an excess the ``above`` ones (equal for the
-    symmetric families). ``level`` and ``set_point`` are (K,) rows.
+    symmetric families). Rows of 2-D arrays are indexed, never sliced: a view
+    per copy costs reference counting in the hot loops.
     """
     total = 0.0
-    for k in range(level.shape[0]):
-        d = (set_point[k] - level[k]) / table[SCALE, k]
+    for k in range(level.shape[1]):
+        d = (set_point[set_point_row, k] - level[row, k]) / table[SCALE, k]
         if d > 0.0:
             total += table[WEIGHT_BELOW, k] * power(abs(d), exponents[N_BELOW])
         else:
@@ -87,10 +89,10 @@ def drive_of(level, set_point, table, exponents):
     return power(total, exponents[ROOT])
 
 
-@njit(cache=True)
+@kernel
 def _drives(level, set_point, table, exponents, out):
     for i in range(level.shape[0]):
-        out[i] = drive_of(level[i], set_point[i], table, exponents)
+        out[i] = drive_of(level, i, set_point, i, table, exponents)
 
 
 class Drive:

@@ -15,11 +15,11 @@ around the kernels only validates actions and fills ``info``.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.drives import drive_of
-from needbench.envs.physiology import BAND, advance_body, initial_body
-from needbench.envs.rewards import PENALISE, settle
+from needbench.envs.physiology import BAND, advance_bodies, initial_body
+from needbench.envs.rewards import PENALISE, settle_batch
 
 # Entries of the engine tuple. Per copy, (B, K) or (B,):
 LEVEL, GUT, SET_POINT, DRIVE = 0, 1, 2, 3  # the body and its current drive D(h_t)
@@ -32,13 +32,14 @@ DRIVE_TABLE, DRIVE_EXPONENTS, CHANNEL, BIAS = 23, 24, 25, 26  # drive and reward
 OPTIONS = 27  # float64 (3,): max_steps, deviation limit, observation offset of world features
 USES_AMBIENT, HAS_PERCEIVED = 28, 29  # bool (1,): which world outputs are read
 KEYS, COUNTERS = 30, 31  # the copies' random streams
-SCRATCH = 32  # (5, K) work rows
-ENGINE_SIZE = 33
+SCRATCH = 32  # (3, K) work rows
+LEVEL_BEFORE, SET_POINT_BEFORE = 33, 34  # (B, K) the body before the step
+ENGINE_SIZE = 35
 # Entries of OPTIONS.
 MAX_STEPS, DEVIATION_LIMIT, WORLD_OFFSET = 0, 1, 2
 
 
-@njit(cache=True)
+@inline_kernel
 def clear_effects(engine, b):
     """Zero what the world does to copy ``b`` before the world acts."""
     intake, activity, ambient, forcing = engine[INTAKE], engine[ACTIVITY], engine[AMBIENT], \
@@ -53,7 +54,7 @@ def clear_effects(engine, b):
         perceived[b, k] = 0.0
 
 
-@njit(cache=True)
+@inline_kernel
 def _internal_state(engine, b):
     """Deviation (band units) and in-band flag of copy ``b`` from its level."""
     level, set_point, deviation = engine[LEVEL], engine[SET_POINT], engine[DEVIATION]
@@ -67,54 +68,48 @@ def _internal_state(engine, b):
     engine[IN_BAND][b] = inside
 
 
-@njit(cache=True)
+@kernel
 def settle_all(engine):
     """Advance every body one step after the world has acted, and score the step."""
-    level, gut, set_point = engine[LEVEL], engine[GUT], engine[SET_POINT]
-    drive, scratch = engine[DRIVE], engine[SCRATCH]
-    coefficients, options = engine[COEFFICIENTS], engine[OPTIONS]
-    max_steps = options[MAX_STEPS]
-    terminate = engine[CHANNEL][PENALISE] == 0.0  # a lethal level ends the episode
-    # Rows: the level and set point before the step (the sensory channel reads
-    # them), the body's two work rows, the reward's work row.
-    before, set_point_before, body_scratch, work = scratch[0], scratch[1], scratch[2:4], scratch[4]
+    level, set_point, scratch = engine[LEVEL], engine[SET_POINT], engine[SCRATCH]
+    before, set_point_before = engine[LEVEL_BEFORE], engine[SET_POINT_BEFORE]
     for b in range(level.shape[0]):
         for k in range(level.shape[1]):
-            before[k] = level[b, k]
-            set_point_before[k] = set_point[b, k]
-        advance_body(b, level, gut, set_point, engine[INTAKE], engine[ACTIVITY], engine[AMBIENT],
-                     engine[FORCING], engine[USES_AMBIENT][0], coefficients, engine[COUPLING],
-                     engine[COUPLING_BELOW], engine[BODY_FLAGS], engine[KEYS], engine[COUNTERS],
-                     body_scratch)
-        reward, internal, drive_after, alive = settle(
-            b, before, set_point_before, level, set_point, engine[INTAKE], engine[PERCEIVED],
-            engine[HAS_PERCEIVED][0], engine[TASK], drive[b], coefficients, engine[CHANNEL],
-            engine[BIAS], engine[DRIVE_TABLE], engine[DRIVE_EXPONENTS], work)
-        drive[b] = drive_after
-        engine[REWARD][b] = reward
-        engine[INTERNAL][b] = internal
-        engine[ALIVE][b] = alive
-        clock = engine[CLOCK]
+            before[b, k] = level[b, k]
+            set_point_before[b, k] = set_point[b, k]
+    advance_bodies(level, engine[GUT], set_point, engine[INTAKE], engine[ACTIVITY],
+                   engine[AMBIENT], engine[FORCING], engine[USES_AMBIENT][0],
+                   engine[COEFFICIENTS], engine[COUPLING], engine[COUPLING_BELOW],
+                   engine[BODY_FLAGS], engine[KEYS], engine[COUNTERS], scratch[0:2])
+    settle_batch(before, set_point_before, level, set_point, engine[INTAKE], engine[PERCEIVED],
+                 engine[HAS_PERCEIVED][0], engine[TASK], engine[DRIVE], engine[COEFFICIENTS],
+                 engine[CHANNEL], engine[BIAS], engine[DRIVE_TABLE], engine[DRIVE_EXPONENTS],
+                 scratch[2:3], engine[REWARD], engine[INTERNAL], engine[ALIVE])
+    max_steps = engine[OPTIONS][MAX_STEPS]
+    terminate = engine[CHANNEL][PENALISE] == 0.0  # a lethal level ends the episode
+    clock, alive = engine[CLOCK], engine[ALIVE]
+    terminated, truncated = engine[TERMINATED], engine[TRUNCATED]
+    for b in range(level.shape[0]):
         clock[b] += 1
-        ended = terminate and not alive
-        engine[TERMINATED][b] = ended
-        engine[TRUNCATED][b] = clock[b] >= max_steps and not ended
+        ended = terminate and not alive[b]
+        terminated[b] = ended
+        truncated[b] = clock[b] >= max_steps and not ended
         _internal_state(engine, b)
 
 
-@njit(cache=True)
+@kernel
 def reset_body(engine, b):
     """A fresh body for copy ``b`` (its stream was rekeyed): levels, drive, clock."""
     level, set_point = engine[LEVEL], engine[SET_POINT]
     initial_body(b, level, engine[GUT], set_point, engine[COEFFICIENTS], engine[KEYS],
                  engine[COUNTERS])
-    engine[DRIVE][b] = drive_of(level[b], set_point[b], engine[DRIVE_TABLE],
+    engine[DRIVE][b] = drive_of(level, b, set_point, b, engine[DRIVE_TABLE],
                                 engine[DRIVE_EXPONENTS])
     engine[CLOCK][b] = 0
     _internal_state(engine, b)
 
 
-@njit(cache=True)
+@inline_kernel
 def observe_internal(engine, b):
     """Write copy ``b``'s deviations, clipped to the observation bounds, as float32."""
     deviation, observation = engine[DEVIATION], engine[OBSERVATION]
@@ -123,11 +118,11 @@ def observe_internal(engine, b):
         observation[b, k] = np.float32(min(max(deviation[b, k], -limit), limit))
 
 
-@njit(cache=True)
+@kernel
 def refresh(engine):
     """Recompute drive, deviation and in-band flags after the bodies were set from outside."""
     level, set_point = engine[LEVEL], engine[SET_POINT]
     for b in range(level.shape[0]):
-        engine[DRIVE][b] = drive_of(level[b], set_point[b], engine[DRIVE_TABLE],
+        engine[DRIVE][b] = drive_of(level, b, set_point, b, engine[DRIVE_TABLE],
                                     engine[DRIVE_EXPONENTS])
         _internal_state(engine, b)

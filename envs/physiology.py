@@ -1,8 +1,8 @@
 """The physiology core: B bodies of K needs, arrays of shape (B, K), compiled.
 
 B copies of a body, K needs. One implementation serves the single env (B = 1)
-and the native vector env (B = N): :func:`advance_body` advances one copy in
-compiled code (numba), and the task kernels call it copy by copy.
+and the native vector env (B = N): :func:`advance_bodies` advances every copy
+in compiled code (numba), called once per step by the task kernels.
 
 Within one step every passive term is linear in the level, so the step is an
 exact solution of the per-need linear ODE
@@ -30,8 +30,8 @@ from collections.abc import Sequence
 from typing import NamedTuple
 
 import numpy as np
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.errors import ConfigError, check_positive
 from needbench.envs.needs import Coupling, Need
 from needbench.envs.streams import as_streams, draw_normals, draw_uniform
@@ -45,10 +45,10 @@ COEFFICIENT_ROWS = 17
 ANY_DELAYED, NOISY, ADAPTS, COUPLED, COUPLED_BELOW = range(5)
 
 
-@njit(cache=True)
-def advance_body(b, level, gut, set_point, intake, activity, ambient, forcing, use_ambient,
-                 coefficients, coupling, coupling_below, flags, keys, counters, scratch):
-    """Advance copy ``b`` of a batch of bodies by one step, in place.
+@kernel
+def advance_bodies(level, gut, set_point, intake, activity, ambient, forcing, use_ambient,
+                   coefficients, coupling, coupling_below, flags, keys, counters, scratch):
+    """Advance every body of a batch by one step, in place.
 
     ``level``, ``gut``, ``set_point`` (B, K) are overwritten with the state
     after the step. Inputs of the step: ``intake`` (B, K) amounts consumed
@@ -56,56 +56,62 @@ def advance_body(b, level, gut, set_point, intake, activity, ambient, forcing, u
     (B,), ``ambient`` (B, K) read only when ``use_ambient`` (else each need's
     own ambient), ``forcing`` (B, K) extra gain per unit time. ``scratch`` is a
     (2, K) work array: the Gaussian draws of a noisy body and the new levels.
+
+    The loop over copies lives here, not in the caller: a compiled call per
+    copy would pay reference counting on every array argument.
     """
     c = coefficients
     k_count = level.shape[1]
-    # Coupling losses are read off the level after an instant intake.
-    for k in range(k_count):
-        if c[DELAYED, k] != 0.0:
-            gut[b, k] = gut[b, k] + intake[b, k]
-        else:
-            level[b, k] = level[b, k] + intake[b, k]
     noise, new_level = scratch[0], scratch[1]
-    if flags[NOISY]:
-        draw_normals(keys, counters, b, noise)
-    for k in range(k_count):
-        # h' = h e^{-k dt} + phi (k a + f) + g transfer, each forcing term
-        # pre-multiplied by phi.
-        new = level[b, k] * c[DECAY, k]
-        if use_ambient:
-            new += c[STEP_CONSTANT, k]
-            new += ambient[b, k] * c[AMBIENT_GAIN, k]
-        else:
-            new += c[STEP_CONSTANT_DEFAULT, k]
-        new -= activity[b] * c[ACTIVITY_GAIN, k]
-        new += forcing[b, k] * c[PHI, k]
-        if flags[COUPLED]:
-            # Losses: max(e, 0) @ above + max(-e, 0) @ below, e = h - h*; with
-            # max(-e, 0) = max(e, 0) - e this is max(e, 0) @ (above + below) - e @ below.
-            loss = 0.0
-            for j in range(k_count):
-                loss += max(level[b, j] - set_point[b, j], 0.0) * coupling[j, k]
-            new -= loss
-            if flags[COUPLED_BELOW]:
-                gain = 0.0
+    any_delayed, noisy, adapts = flags[ANY_DELAYED], flags[NOISY], flags[ADAPTS]
+    coupled, coupled_below = flags[COUPLED], flags[COUPLED_BELOW]
+    for b in range(level.shape[0]):
+        # Coupling losses are read off the level after an instant intake.
+        for k in range(k_count):
+            if c[DELAYED, k] != 0.0:
+                gut[b, k] = gut[b, k] + intake[b, k]
+            else:
+                level[b, k] = level[b, k] + intake[b, k]
+        if noisy:
+            draw_normals(keys, counters, b, noise)
+        for k in range(k_count):
+            # h' = h e^{-k dt} + phi (k a + f) + g transfer, each forcing term
+            # pre-multiplied by phi.
+            new = level[b, k] * c[DECAY, k]
+            if use_ambient:
+                new += c[STEP_CONSTANT, k]
+                new += ambient[b, k] * c[AMBIENT_GAIN, k]
+            else:
+                new += c[STEP_CONSTANT_DEFAULT, k]
+            new -= activity[b] * c[ACTIVITY_GAIN, k]
+            new += forcing[b, k] * c[PHI, k]
+            if coupled:
+                # Losses: max(e, 0) @ above + max(-e, 0) @ below, e = h - h*; with
+                # max(-e, 0) = max(e, 0) - e this is max(e, 0) @ (above + below) - e @ below.
+                loss = 0.0
                 for j in range(k_count):
-                    gain += (level[b, j] - set_point[b, j]) * coupling_below[j, k]
-                new += gain
-        if flags[ANY_DELAYED]:
-            new += gut[b, k] * c[TRANSFER, k]
-        if flags[NOISY]:
-            new += c[NOISE_SCALE, k] * noise[k]
-        new_level[k] = new  # held until every need has read the old levels
-    for k in range(k_count):
-        new = new_level[k]
-        if flags[ANY_DELAYED]:
-            gut[b, k] = gut[b, k] * c[GUT_DECAY, k]
-        if flags[ADAPTS]:
-            set_point[b, k] = set_point[b, k] + c[ADAPTATION, k] * (new - set_point[b, k])
-        level[b, k] = new
+                    loss += max(level[b, j] - set_point[b, j], 0.0) * coupling[j, k]
+                new -= loss
+                if coupled_below:
+                    gain = 0.0
+                    for j in range(k_count):
+                        gain += (level[b, j] - set_point[b, j]) * coupling_below[j, k]
+                    new += gain
+            if any_delayed:
+                new += gut[b, k] * c[TRANSFER, k]
+            if noisy:
+                new += c[NOISE_SCALE, k] * noise[k]
+            new_level[k] = new  # held until every need has read the old levels
+        for k in range(k_count):
+            new = new_level[k]
+            if any_delayed:
+                gut[b, k] = gut[b, k] * c[GUT_DECAY, k]
+            if adapts:
+                set_point[b, k] = set_point[b, k] + c[ADAPTATION, k] * (new - set_point[b, k])
+            level[b, k] = new
 
 
-@njit(cache=True)
+@inline_kernel
 def initial_body(b, level, gut, set_point, coefficients, keys, counters):
     """Fresh body ``b``: levels uniform in each need's initial range, gut empty."""
     c = coefficients
@@ -116,7 +122,7 @@ def initial_body(b, level, gut, set_point, coefficients, keys, counters):
         set_point[b, k] = c[SET_POINT, k]
 
 
-@njit(cache=True)
+@inline_kernel
 def is_alive(b, level, coefficients):
     """True where every need of copy ``b`` is strictly inside its lethal bounds."""
     for k in range(level.shape[1]):
@@ -126,22 +132,13 @@ def is_alive(b, level, coefficients):
     return True
 
 
-@njit(cache=True)
-def _transition(level, gut, set_point, intake, activity, ambient, forcing, use_ambient,
-                coefficients, coupling, coupling_below, flags, keys, counters):
-    scratch = np.empty((2, level.shape[1]))
-    for b in range(level.shape[0]):
-        advance_body(b, level, gut, set_point, intake, activity, ambient, forcing, use_ambient,
-                     coefficients, coupling, coupling_below, flags, keys, counters, scratch)
-
-
-@njit(cache=True)
+@kernel
 def _initial(level, gut, set_point, coefficients, keys, counters):
     for b in range(level.shape[0]):
         initial_body(b, level, gut, set_point, coefficients, keys, counters)
 
 
-@njit(cache=True)
+@kernel
 def _alive(level, coefficients, out):
     for b in range(level.shape[0]):
         out[b] = is_alive(b, level, coefficients)
@@ -290,7 +287,7 @@ class Physiology:
         ambient: np.ndarray | None = None,
         forcing: np.ndarray | None = None,
     ) -> BodyState:
-        """Advance B bodies by one step (the compiled :func:`advance_body` per copy).
+        """Advance B bodies by one step (the compiled :func:`advance_bodies`).
 
         Args:
             state: the bodies before the step.
@@ -320,11 +317,11 @@ class Physiology:
 
         gut = np.array(state.gut, dtype=np.float64, ndmin=2)
         set_point = np.array(np.broadcast_to(state.set_point, (batch, k)), dtype=np.float64)
-        _transition(level, gut, set_point, batch_of(intake, (batch, k)),
-                    batch_of(activity, (batch,)), batch_of(ambient, (batch, k)),
-                    batch_of(forcing, (batch, k)), ambient is not None,
-                    self.coefficients, self.coupling, self.coupling_below, self.flags,
-                    streams.keys, streams.counter)
+        advance_bodies(level, gut, set_point, batch_of(intake, (batch, k)),
+                       batch_of(activity, (batch,)), batch_of(ambient, (batch, k)),
+                       batch_of(forcing, (batch, k)), ambient is not None, self.coefficients,
+                       self.coupling, self.coupling_below, self.flags, streams.keys,
+                       streams.counter, np.empty((2, k)))
         return BodyState(level, gut, set_point)
 
     def alive(self, state: BodyState) -> np.ndarray:

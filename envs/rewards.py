@@ -20,7 +20,7 @@ The channel also owns what happens at a lethal level, so that every caller
 ``on_lethal="terminate"`` ends the episode; ``"penalise"`` holds the level
 just inside its lethal bounds and the episode goes on; either way
 ``lethal_penalty`` is subtracted from the reward of every step that ends
-outside the bounds. :func:`settle` is that whole assembly for one copy.
+outside the bounds. :func:`settle_batch` is that whole assembly.
 """
 
 from __future__ import annotations
@@ -31,8 +31,8 @@ from dataclasses import dataclass, field
 from typing import NamedTuple
 
 import numpy as np
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.drives import Drive, drive_of
 from needbench.envs.errors import ConfigError, check_choice, check_finite
 from needbench.envs.physiology import BAND, LETHAL_HIGH, LETHAL_LOW, BodyState, is_alive
@@ -54,17 +54,17 @@ class RewardParts(NamedTuple):
     drive_after: np.ndarray  # D(h_{t+1})
 
 
-@njit(cache=True)
-def reward_parts(level_before, set_point_before, level_after, set_point_after, intake,
+@inline_kernel
+def reward_parts(b, level_before, set_point_before, level_after, set_point_after, intake,
                  perceived, has_perceived, alive, task, drive_before, channel, bias,
                  drive_table, drive_exponents, work):
-    """(total, internal, D(h_{t+1})) of one copy; rows are (K,) arrays.
+    """(total, internal, D(h_{t+1})) of copy ``b``; the arrays are (B, K).
 
-    ``perceived`` (K,) is the outcome as the agent perceives it when
+    ``perceived`` is the outcome as the agent perceives it when
     ``has_perceived``; otherwise the sensory channel perceives ``intake``
-    plus the bias of each consumed need. ``work`` is a (K,) scratch row.
+    plus the bias of each consumed need. ``work`` is a (1, K) scratch array.
     """
-    drive_after = drive_of(level_after, set_point_after, drive_table, drive_exponents)
+    drive_after = drive_of(level_after, b, set_point_after, b, drive_table, drive_exponents)
     kind = int(channel[KIND])
     if kind == DRIVE_REDUCTION:
         internal = drive_before - drive_after
@@ -73,63 +73,57 @@ def reward_parts(level_before, set_point_before, level_after, set_point_after, i
     elif kind == SURVIVAL:
         internal = 1.0 if alive else 0.0
     else:
-        for k in range(level_before.shape[0]):
+        for k in range(level_before.shape[1]):
             if has_perceived:
-                work[k] = level_before[k] + perceived[k]
+                work[0, k] = level_before[b, k] + perceived[b, k]
             else:
-                extra = bias[k] if intake[k] != 0.0 else 0.0
-                work[k] = level_before[k] + (intake[k] + extra)
-        internal = drive_before - drive_of(work, set_point_before, drive_table, drive_exponents)
+                extra = bias[k] if intake[b, k] != 0.0 else 0.0
+                work[0, k] = level_before[b, k] + (intake[b, k] + extra)
+        internal = drive_before - drive_of(work, 0, set_point_before, b, drive_table,
+                                           drive_exponents)
     total = channel[DRIVE_WEIGHT] * internal + channel[TASK_WEIGHT] * task
     return total, internal, drive_after
 
 
-@njit(cache=True)
-def settle(b, level_before, set_point_before, level, set_point, intake, perceived,
-           has_perceived, task, drive_before, coefficients, channel, bias, drive_table,
-           drive_exponents, work):
-    """The outcome of copy ``b``'s step once its body has moved to ``level``.
+@kernel
+def settle_batch(level_before, set_point_before, level, set_point, intake, perceived,
+                 has_perceived, task, drive, coefficients, channel, bias, drive_table,
+                 drive_exponents, work, reward, internal, alive):
+    """The outcome of every copy's step once its body has moved to ``level``.
 
     Decides survival, holds the level inside its bounds under ``penalise``
-    (in place), scores the reward and subtracts the lethal penalty. Returns
-    (reward, internal, D(h_{t+1}), alive).
+    (in place), scores the reward and subtracts the lethal penalty. ``drive``
+    (B,) holds D(h_t) on entry and D(h_{t+1}) on return; ``reward``,
+    ``internal``, ``alive`` (B,) are written.
     """
-    alive = is_alive(b, level, coefficients)
-    if not alive and channel[PENALISE] != 0.0:
-        for k in range(level.shape[1]):
-            margin = 1e-6 * coefficients[BAND, k]
-            level[b, k] = min(max(level[b, k], coefficients[LETHAL_LOW, k] + margin),
-                              coefficients[LETHAL_HIGH, k] - margin)
-    total, internal, drive_after = reward_parts(
-        level_before, set_point_before, level[b], set_point[b], intake[b], perceived[b],
-        has_perceived, alive, task[b], drive_before, channel, bias, drive_table,
-        drive_exponents, work)
-    if not alive:
-        total = total - channel[LETHAL_PENALTY]
-    return total, internal, drive_after, alive
+    penalise = channel[PENALISE] != 0.0
+    for b in range(level.shape[0]):
+        lives = is_alive(b, level, coefficients)
+        if not lives and penalise:
+            for k in range(level.shape[1]):
+                margin = 1e-6 * coefficients[BAND, k]
+                level[b, k] = min(max(level[b, k], coefficients[LETHAL_LOW, k] + margin),
+                                  coefficients[LETHAL_HIGH, k] - margin)
+        total, value, drive_after = reward_parts(
+            b, level_before, set_point_before, level, set_point, intake, perceived,
+            has_perceived, lives, task[b], drive[b], channel, bias, drive_table,
+            drive_exponents, work)
+        if not lives:
+            total = total - channel[LETHAL_PENALTY]
+        drive[b] = drive_after
+        reward[b] = total
+        internal[b] = value
+        alive[b] = lives
 
 
-@njit(cache=True)
+@kernel
 def _compute(level_before, set_point_before, level_after, set_point_after, intake, perceived,
              has_perceived, alive, task, drive_before, channel, bias, drive_table,
-             drive_exponents, total, internal, drive_after):
-    work = np.empty(level_before.shape[1])
+             drive_exponents, work, total, internal, drive_after):
     for b in range(level_before.shape[0]):
         total[b], internal[b], drive_after[b] = reward_parts(
-            level_before[b], set_point_before[b], level_after[b], set_point_after[b], intake[b],
-            perceived[b], has_perceived, alive[b], task[b], drive_before[b], channel, bias,
-            drive_table, drive_exponents, work)
-
-
-@njit(cache=True)
-def _settle(level_before, set_point_before, level, set_point, intake, perceived, has_perceived,
-            task, drive_before, coefficients, channel, bias, drive_table, drive_exponents,
-            total, internal, drive_after, alive):
-    work = np.empty(level.shape[1])
-    for b in range(level.shape[0]):
-        total[b], internal[b], drive_after[b], alive[b] = settle(
-            b, level_before[b], set_point_before[b], level, set_point, intake, perceived,
-            has_perceived, task, drive_before[b], coefficients, channel, bias, drive_table,
+            b, level_before, set_point_before, level_after, set_point_after, intake, perceived,
+            has_perceived, alive[b], task[b], drive_before[b], channel, bias, drive_table,
             drive_exponents, work)
 
 
@@ -240,7 +234,7 @@ class RewardChannel:
         _compute(level, set_point, np.asarray(after.level, np.float64),
                  np.asarray(np.broadcast_to(after.set_point, (batch, k)), np.float64), intake,
                  perceived, has_perceived, alive, task, d_before, channel, bias, drive.table(k),
-                 drive.exponents, total, internal, d_after)
+                 drive.exponents, np.empty((1, k)), total, internal, d_after)
         return RewardParts(total, internal, task, d_before, d_after)
 
     def outcome(self, physiology, drive: Drive, before: BodyState, after: BodyState, *,
@@ -256,11 +250,11 @@ class RewardChannel:
         held = np.array(after.level, dtype=np.float64)
         after_set_point = np.array(np.broadcast_to(after.set_point, (batch, k)), np.float64)
         channel, bias = self.parameters(k)
-        total, internal, d_after = np.empty(batch), np.empty(batch), np.empty(batch)
-        alive = np.empty(batch, np.bool_)
+        total, internal, alive = np.empty(batch), np.empty(batch), np.empty(batch, np.bool_)
         d_before = drive(level, set_point)
-        _settle(level, set_point, held, after_set_point, intake, perceived, has_perceived, task,
-                d_before, physiology.coefficients, channel, bias, drive.table(k), drive.exponents,
-                total, internal, d_after, alive)
+        d_after = d_before.copy()
+        settle_batch(level, set_point, held, after_set_point, intake, perceived, has_perceived,
+                     task, d_after, physiology.coefficients, channel, bias, drive.table(k),
+                     drive.exponents, np.empty((1, k)), total, internal, alive)
         return Outcome(total, internal, d_before, d_after, alive,
                        BodyState(held, np.asarray(after.gut), after_set_point))

@@ -9,7 +9,8 @@ batch and a single env with the same key see exactly the same numbers, because
 every draw takes the same count of words from every copy.
 
 The draw functions here are numba kernels that the task kernels call copy by
-copy (``draw_word``, ``draw_uniform``, ``draw_normals``); :class:`CopyStreams`
+copy (``draw_word``, ``draw_uniform``, ``draw_normals``), inlined where they
+are called so that no per-copy call pays reference counting; :class:`CopyStreams`
 holds the keys and counters of B copies and offers numpy Generator-like
 methods (``random``, ``uniform``, ``standard_normal``, ``integers``) whose
 ``size`` starts with the batch, built on the same kernels.
@@ -20,7 +21,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+
+from needbench.envs.compiled import inline_kernel, kernel
 
 GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _MIX1 = np.uint64(0xBF58476D1CE4E5B9)
@@ -33,7 +35,7 @@ _INV32 = 1.0 / 4294967296.0
 _TWO_PI = 2.0 * math.pi
 
 
-@njit(cache=True)
+@inline_kernel
 def splitmix(x):
     """The SplitMix64 finaliser of one uint64 word."""
     x = x ^ (x >> _S30)
@@ -43,7 +45,7 @@ def splitmix(x):
     return x ^ (x >> _S31)
 
 
-@njit(cache=True)
+@inline_kernel
 def draw_word(keys, counters, b):
     """The next random uint64 word of copy ``b`` (advances its counter)."""
     x = splitmix(keys[b] + counters[b] * GOLDEN)
@@ -51,13 +53,13 @@ def draw_word(keys, counters, b):
     return x
 
 
-@njit(cache=True)
+@inline_kernel
 def draw_uniform(keys, counters, b):
     """The next uniform float of copy ``b`` in [0, 1), with 53 random bits."""
     return float(draw_word(keys, counters, b) >> _S11) * _INV53
 
 
-@njit(cache=True)
+@kernel
 def draw_normals(keys, counters, b, out):
     """Fill ``out`` (n,) with standard normal draws of copy ``b`` (Box-Muller).
 
@@ -78,14 +80,14 @@ def draw_normals(keys, counters, b, out):
             out[pairs + j] = radius * math.sin(angle)
 
 
-@njit(cache=True)
+@kernel
 def _fill_uniform(keys, counters, out):
     for b in range(out.shape[0]):
         for j in range(out.shape[1]):
             out[b, j] = draw_uniform(keys, counters, b)
 
 
-@njit(cache=True)
+@kernel
 def _fill_normal(keys, counters, out):
     for b in range(out.shape[0]):
         draw_normals(keys, counters, b, out[b])
@@ -158,6 +160,33 @@ class CopyStreams:
 def key_from(generator: np.random.Generator) -> np.uint64:
     """Draw a stream key from a copy's Gymnasium ``np_random``."""
     return np.uint64(generator.integers(0, 2**63, dtype=np.int64))
+
+
+class EpisodeKeys:
+    """The stream keys of B copies' episodes, each copy drawing from its own generator.
+
+    Copy i's keys are exactly the successive :func:`key_from` draws of its
+    generator (numpy draws a block of bounded integers as the same sequence
+    as one at a time), taken a block at a time so that the autoreset of many
+    copies costs no Python call per copy.
+    """
+
+    BLOCK = 64
+
+    def __init__(self, generators: list[np.random.Generator]):
+        self.generators = generators
+        self.buffer = np.empty((len(generators), self.BLOCK), dtype=np.uint64)
+        self.used = np.full(len(generators), self.BLOCK, dtype=np.int64)
+
+    def next(self, copies: np.ndarray) -> np.ndarray:
+        """The next key of each copy in ``copies`` (indices, ascending)."""
+        for i in copies[self.used[copies] >= self.BLOCK]:
+            self.buffer[i] = self.generators[i].integers(0, 2**63, size=self.BLOCK,
+                                                         dtype=np.int64)
+            self.used[i] = 0
+        keys = self.buffer[copies, self.used[copies]]
+        self.used[copies] += 1
+        return keys
 
 
 def as_streams(rng, batch: int) -> CopyStreams:

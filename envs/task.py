@@ -69,12 +69,14 @@ from needbench.envs.engine import (
     INTERNAL,
     KEYS,
     LEVEL,
+    LEVEL_BEFORE,
     OBSERVATION,
     OPTIONS,
     PERCEIVED,
     REWARD,
     SCRATCH,
     SET_POINT,
+    SET_POINT_BEFORE,
     TASK,
     TERMINATED,
     TRUNCATED,
@@ -85,7 +87,7 @@ from needbench.envs.errors import ActionError, ConfigError, check_choice
 from needbench.envs.physiology import BodyState, Physiology
 from needbench.envs.presets import preset as load_preset
 from needbench.envs.rewards import RewardChannel
-from needbench.envs.streams import CopyStreams, key_from
+from needbench.envs.streams import CopyStreams, EpisodeKeys, key_from
 
 
 class World:
@@ -264,7 +266,8 @@ class TaskCore:
                 (ALIVE, (B,), np.bool_), (TERMINATED, (B,), np.bool_),
                 (TRUNCATED, (B,), np.bool_), (CLOCK, (B,), np.int64),
                 (DEVIATION, (B, k), np.float64), (IN_BAND, (B,), np.bool_),
-                (OBSERVATION, (B, width), np.float32), (SCRATCH, (5, k), np.float64)):
+                (OBSERVATION, (B, width), np.float32), (SCRATCH, (3, k), np.float64),
+                (LEVEL_BEFORE, (B, k), np.float64), (SET_POINT_BEFORE, (B, k), np.float64)):
             engine[index] = np.zeros(shape, dtype)
         engine[ALIVE][:] = True
         physiology = self.physiology
@@ -532,8 +535,9 @@ class NeedVectorEnv(VectorEnv):
         self.single_action_space = self.core.world.action_space
         self.observation_space = batch_space(self.single_observation_space, self.num_envs)
         self.action_space = batch_space(self.single_action_space, self.num_envs)
-        self._copy_rngs: list[np.random.Generator] = []
+        self._keys: EpisodeKeys | None = None
         self._done = np.zeros(self.num_envs, dtype=bool)
+        self._copies = np.arange(self.num_envs)
 
     def reset(self, *, seed: int | list[int] | None = None, options: dict | None = None):
         if seed is None:
@@ -544,13 +548,12 @@ class NeedVectorEnv(VectorEnv):
             seeds = list(seed)
             if len(seeds) != self.num_envs:
                 raise ConfigError("seed", seed, f"an int or a list of {self.num_envs} seeds")
-        if seed is not None or not self._copy_rngs:
-            self._copy_rngs = [np.random.default_rng(s) if s is None
-                               else gym.utils.seeding.np_random(s)[0] for s in seeds]
+        if seed is not None or self._keys is None:
+            self._keys = EpisodeKeys([np.random.default_rng(s) if s is None
+                                      else gym.utils.seeding.np_random(s)[0] for s in seeds])
             if seed is not None:
                 self._np_random, self._np_random_seed = gym.utils.seeding.np_random(seeds[0])
-        keys = np.array([key_from(g) for g in self._copy_rngs], dtype=np.uint64)
-        self.core.reset(keys)
+        self.core.reset(self._keys.next(self._copies))
         self._done[:] = False
         return self.core.observation(), self.core.body_info()
 
@@ -560,9 +563,7 @@ class NeedVectorEnv(VectorEnv):
         resetting = self._done
         core.step(batched)
         if resetting.any():
-            keys = np.array([key_from(self._copy_rngs[i]) for i in np.flatnonzero(resetting)],
-                            dtype=np.uint64)
-            core.reset(keys, resetting)
+            core.reset(self._keys.next(np.flatnonzero(resetting)), resetting)
             engine = core.engine
             for index in (INTERNAL, TASK, INTAKE, REWARD, TERMINATED, TRUNCATED):
                 engine[index][resetting] = 0

@@ -5,8 +5,8 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from numba import njit
 
+from needbench.envs.compiled import kernel
 from needbench.envs.drives import Drive
 from needbench.envs.engine import COUNTERS, INTAKE, KEYS, settle_all
 from needbench.envs.errors import ConfigError, check_positive, check_range
@@ -38,7 +38,7 @@ def skiff_items(need: str, safe_amount: float, risky_probability: float) -> tupl
     )
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     cumulative, effects, band, deep_net = constants
     (last_outcome,) = state

@@ -7,8 +7,8 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
-from numba import njit
 
+from needbench.envs.compiled import kernel
 from needbench.envs.engine import COUNTERS, INTAKE, KEYS, PERCEIVED, settle_all
 from needbench.envs.errors import ConfigError, check_finite
 from needbench.envs.physiology import Physiology
@@ -35,7 +35,7 @@ FAIR_STALLS: tuple[tuple[str, tuple[tuple[float, Mapping[str, float]], ...]], ..
 FAIR_LURES: Mapping[str, Mapping[str, float]] = {"honey fudge": {"energy": -0.6}}
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     cumulative, effects, band, perceived_effects, is_lure = constants
     (last_outcome,) = state

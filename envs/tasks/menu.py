@@ -8,8 +8,8 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     COUNTERS,
     INTAKE,
@@ -62,7 +62,7 @@ def outcome_tables(items, physiology: Physiology):
     return cumulative, effects
 
 
-@njit(cache=True)
+@inline_kernel
 def draw_outcome(b, item, cumulative, effects, intake, keys, counters):
     """Draw copy ``b``'s outcome of ``item`` and write its intake; return the outcome index.
 
@@ -80,7 +80,7 @@ def draw_outcome(b, item, cumulative, effects, intake, keys, counters):
     return outcome
 
 
-@njit(cache=True)
+@inline_kernel
 def observe_last_outcome(b, last_outcome, engine):
     """Copy ``b``'s observation: deviations, then what the last item delivered."""
     observe_internal(engine, b)
@@ -90,23 +90,24 @@ def observe_last_outcome(b, last_outcome, engine):
         observation[b, offset + k] = np.float32(last_outcome[b, k])
 
 
-@njit(cache=True)
+@inline_kernel
 def record_last_outcome(b, last_outcome, intake, band):
     for k in range(intake.shape[1]):
         last_outcome[b, k] = intake[b, k] / band[k]
 
 
-@njit(cache=True)
+@kernel
 def _reset(mask, constants, state, engine):
     (last_outcome,) = state
     for b in range(mask.shape[0]):
         if mask[b]:
             reset_body(engine, b)
-            last_outcome[b, :] = 0.0
+            for k in range(last_outcome.shape[1]):
+                last_outcome[b, k] = 0.0
             observe_last_outcome(b, last_outcome, engine)
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     cumulative, effects, band = constants
     (last_outcome,) = state
@@ -123,7 +124,7 @@ def _step(actions, constants, state, events, engine):
         observe_last_outcome(b, last_outcome, engine)
 
 
-@njit(cache=True)
+@kernel
 def _observe(constants, state, engine):
     (last_outcome,) = state
     for b in range(last_outcome.shape[0]):
