@@ -17,7 +17,6 @@ from needbench.envs.engine import (
     OBSERVATION,
     OPTIONS,
     WORLD_OFFSET,
-    observe_internal,
     reset_body,
     settle_all,
 )
@@ -25,6 +24,7 @@ from needbench.envs.errors import ConfigError, check_finite, check_range
 from needbench.envs.physiology import Physiology
 from needbench.envs.streams import draw_uniform
 from needbench.envs.task import NeedEnv, NeedVectorEnv, World
+from needbench.envs.tasks.menu import observe_last_outcome, record_last_outcome
 
 #: The larder of an invented upland valley through the year: (name, {need:
 #: amount at the annual mean yield, band units}, peak) with ``peak`` the time
@@ -100,22 +100,20 @@ def season_yield(phase: np.ndarray, peaks: np.ndarray, seasonal: np.ndarray,
 
 @njit(cache=True)
 def observe_harvest(b, phase, last_outcome, show_season, engine):
-    """Copy ``b``'s observation: deviations, what the last item delivered, the season if shown."""
-    observe_internal(engine, b)
-    observation = engine[OBSERVATION]
-    offset = int(engine[OPTIONS][WORLD_OFFSET])
-    k_count = last_outcome.shape[1]
-    for k in range(k_count):
-        observation[b, offset + k] = np.float32(last_outcome[b, k])
+    """Copy ``b``'s observation: deviations, what the last item delivered (as in
+    Menu), then cos and sin of the time of year if shown."""
+    observe_last_outcome(b, last_outcome, engine)
     if show_season:
+        column = int(engine[OPTIONS][WORLD_OFFSET]) + last_outcome.shape[1]
         angle = 2.0 * math.pi * phase
-        observation[b, offset + k_count] = np.float32(math.cos(angle))
-        observation[b, offset + k_count + 1] = np.float32(math.sin(angle))
+        observation = engine[OBSERVATION]
+        observation[b, column] = np.float32(math.cos(angle))
+        observation[b, column + 1] = np.float32(math.sin(angle))
 
 
 @njit(cache=True)
 def _reset(mask, constants, state, engine):
-    year_length, random_start, show_season = constants[4], constants[5], constants[6]
+    _, _, _, _, year_length, random_start, show_season, _ = constants
     day, start, last_outcome = state
     for b in range(mask.shape[0]):
         if mask[b]:
@@ -141,7 +139,7 @@ def _step(actions, constants, state, events, engine):
         m = yield_multiplier(phase, peaks[item], seasonal[item], amplitude)
         for k in range(intake.shape[1]):
             intake[b, k] = m * effects[item, k]
-            last_outcome[b, k] = intake[b, k] / band[k]
+        record_last_outcome(b, last_outcome, intake, band)
         day[b] += 1
         item_event[b] = item
         season_event[b] = phase
@@ -153,7 +151,7 @@ def _step(actions, constants, state, events, engine):
 
 @njit(cache=True)
 def _observe(constants, state, engine):
-    year_length, show_season = constants[4], constants[6]
+    _, _, _, _, year_length, _, show_season, _ = constants
     day, start, last_outcome = state
     for b in range(day.shape[0]):
         observe_harvest(b, time_of_year(start[b], day[b], year_length), last_outcome,

@@ -72,16 +72,17 @@ def observe_weather(b, since_cue, coat, event_length, clock, engine):
     offset = int(engine[OPTIONS][WORLD_OFFSET])
     since = since_cue[b]
     observation[b, offset] = np.float32(1.0 if since == 0 else 0.0)
+    column = offset + 1
     if clock:
         # Fraction of the warning-plus-squall span gone by; 1 when none is under way.
-        observation[b, offset + 1] = np.float32(since / event_length if since >= 0 else 1.0)
-        offset += 1
-    observation[b, offset + 1] = np.float32(1.0 if coat[b] else 0.0)
+        observation[b, column] = np.float32(since / event_length if since >= 0 else 1.0)
+        column += 1
+    observation[b, column] = np.float32(1.0 if coat[b] else 0.0)
 
 
 @njit(cache=True)
 def _reset(mask, constants, state, engine):
-    event_length, clock = constants[1], constants[9]
+    _, event_length, _, _, _, _, _, _, _, clock = constants
     since_cue, coat = state
     for b in range(mask.shape[0]):
         if mask[b]:
@@ -124,7 +125,7 @@ def _step(actions, constants, state, events, engine):
 
 @njit(cache=True)
 def _observe(constants, state, engine):
-    event_length, clock = constants[1], constants[9]
+    _, event_length, _, _, _, _, _, _, _, clock = constants
     since_cue, coat = state
     for b in range(since_cue.shape[0]):
         observe_weather(b, since_cue, coat, event_length, clock, engine)
