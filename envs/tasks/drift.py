@@ -2,16 +2,29 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
 from gymnasium import spaces
+from numba import njit
 
+from needbench.envs.engine import (
+    COUNTERS,
+    INTAKE,
+    KEYS,
+    OBSERVATION,
+    OPTIONS,
+    WORLD_OFFSET,
+    reset_body,
+    settle_all,
+)
 from needbench.envs.errors import ConfigError, check_finite, check_range
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.streams import CopyStreams
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+from needbench.envs.physiology import Physiology
+from needbench.envs.streams import draw_uniform
+from needbench.envs.task import NeedEnv, NeedVectorEnv, World
+from needbench.envs.tasks.menu import observe_last_outcome, record_last_outcome
 
 #: The larder of an invented upland valley through the year: (name, {need:
 #: amount at the annual mean yield, band units}, peak) with ``peak`` the time
@@ -33,14 +46,116 @@ ALLOSTASIS_RATE = 0.002
 ALLOSTATIC_NEEDS = ("energy", "water")
 
 
+@njit(cache=True)
+def time_of_year(start, day, year_length):
+    """Time of year, a fraction in [0, 1), ``day`` steps after a year began at ``start``."""
+    return (start + day / year_length) % 1.0
+
+
+@njit(cache=True)
+def yield_multiplier(phase, peak, seasonal, amplitude):
+    """m = 1 + amplitude * cos(2 pi (phase - peak)) for a seasonal item, 1 otherwise."""
+    if not seasonal:
+        return 1.0
+    return 1.0 + amplitude * math.cos(2.0 * math.pi * (phase - peak))
+
+
+@njit(cache=True)
+def _multipliers(phase, peaks, seasonal, amplitude, out):
+    for b in range(phase.shape[0]):
+        for i in range(peaks.shape[0]):
+            out[b, i] = yield_multiplier(phase[b], peaks[i], seasonal[i], amplitude)
+
+
+@njit(cache=True)
+def _seasons(start, day, year_length, out):
+    for b in range(start.shape[0]):
+        out[b] = time_of_year(start[b], day[b], year_length)
+
+
+@njit(cache=True)
+def _yields(start, day, year_length, effects, peaks, seasonal, amplitude, out):
+    for b in range(start.shape[0]):
+        phase = time_of_year(start[b], day[b], year_length)
+        for i in range(effects.shape[0]):
+            m = yield_multiplier(phase, peaks[i], seasonal[i], amplitude)
+            for k in range(effects.shape[1]):
+                out[b, i, k] = m * effects[i, k]
+
+
 def season_yield(phase: np.ndarray, peaks: np.ndarray, seasonal: np.ndarray,
                  amplitude: float) -> np.ndarray:
     """(B, I) yield multipliers at time of year ``phase`` (B,) in [0, 1).
 
-    m_i = 1 + amplitude * cos(2 pi (phase - peak_i)) for a seasonal item, 1 otherwise.
+    m_i = 1 + amplitude * cos(2 pi (phase - peak_i)) for a seasonal item, 1 otherwise
+    (:func:`yield_multiplier`, the function the step kernel calls).
     """
-    wave = np.cos(2.0 * np.pi * (phase[:, None] - peaks[None, :]))
-    return np.where(seasonal[None, :], 1.0 + amplitude * wave, 1.0)
+    phase = np.ascontiguousarray(phase, dtype=np.float64).reshape(-1)
+    peaks = np.ascontiguousarray(peaks, dtype=np.float64)
+    out = np.empty((phase.shape[0], peaks.shape[0]))
+    _multipliers(phase, peaks, np.ascontiguousarray(seasonal, dtype=np.bool_),
+                 float(amplitude), out)
+    return out
+
+
+@njit(cache=True)
+def observe_harvest(b, phase, last_outcome, show_season, engine):
+    """Copy ``b``'s observation: deviations, what the last item delivered (as in
+    Menu), then cos and sin of the time of year if shown."""
+    observe_last_outcome(b, last_outcome, engine)
+    if show_season:
+        column = int(engine[OPTIONS][WORLD_OFFSET]) + last_outcome.shape[1]
+        angle = 2.0 * math.pi * phase
+        observation = engine[OBSERVATION]
+        observation[b, column] = np.float32(math.cos(angle))
+        observation[b, column + 1] = np.float32(math.sin(angle))
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    _, _, _, _, year_length, random_start, show_season, _ = constants
+    day, start, last_outcome = state
+    for b in range(mask.shape[0]):
+        if mask[b]:
+            reset_body(engine, b)
+            # Drawn whether used or not, so that the streams stay aligned either way.
+            u = draw_uniform(engine[KEYS], engine[COUNTERS], b)
+            start[b] = u if random_start else 0.0
+            day[b] = 0
+            last_outcome[b, :] = 0.0
+            observe_harvest(b, time_of_year(start[b], 0, year_length), last_outcome,
+                            show_season, engine)
+
+
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    effects, peaks, seasonal, amplitude, year_length, _, show_season, band = constants
+    day, start, last_outcome = state
+    item_event, season_event = events
+    intake = engine[INTAKE]
+    for b in range(actions.shape[0]):
+        item = actions[b]
+        phase = time_of_year(start[b], day[b], year_length)
+        m = yield_multiplier(phase, peaks[item], seasonal[item], amplitude)
+        for k in range(intake.shape[1]):
+            intake[b, k] = m * effects[item, k]
+        record_last_outcome(b, last_outcome, intake, band)
+        day[b] += 1
+        item_event[b] = item
+        season_event[b] = phase
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_harvest(b, time_of_year(start[b], day[b], year_length), last_outcome,
+                        show_season, engine)
+
+
+@njit(cache=True)
+def _observe(constants, state, engine):
+    _, _, _, _, year_length, _, show_season, _ = constants
+    day, start, last_outcome = state
+    for b in range(day.shape[0]):
+        observe_harvest(b, time_of_year(start[b], day[b], year_length), last_outcome,
+                        show_season, engine)
 
 
 def parse_items(items: Sequence | None, physiology: Physiology):
@@ -78,12 +193,16 @@ class DriftWorld(World):
     State: ``day`` (B,) steps since the episode began, ``start`` (B,) time of
     year at the first step (fraction in [0, 1)), ``last_outcome`` (B, K) what
     the last item delivered, in band units. The time of year at a step is
-    ``(start + day / year_length) mod 1``.
+    ``(start + day / year_length) mod 1``. Events in ``info``: ``item`` taken
+    and ``season``, the time of year of that step.
     """
 
     default_needs = ("energy", "water")
     parameters = {"items": None, "year_length": 400, "amplitude": 0.9, "random_start": True,
                   "show_season": False}
+    reset_kernel = staticmethod(_reset)
+    step_kernel = staticmethod(_step)
+    observe_kernel = staticmethod(_observe)
 
     def __init__(self, physiology: Physiology, items: Sequence | None = None,
                  year_length: int = 400, amplitude: float = 0.9, random_start: bool = True,
@@ -114,17 +233,22 @@ class DriftWorld(World):
         self.feature_low = np.array(low)
         self.feature_high = np.array(high)
 
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
-        # Drawn whether used or not, so that the streams stay aligned either way.
-        start = rng.random((batch,))
-        if not self.random_start:
-            start = np.zeros(batch)
-        return {"day": np.zeros(batch, np.int64), "start": start,
+    def constants(self) -> tuple:
+        return (self.effects, self.peaks, self.seasonal, self.amplitude, self.year_length,
+                self.random_start, self.show_season, self.physiology.band)
+
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
+        return {"day": np.zeros(batch, np.int64), "start": np.zeros(batch),
                 "last_outcome": np.zeros((batch, self.physiology.num_needs))}
+
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {"item": np.zeros(batch, np.int64), "season": np.zeros(batch)}
 
     def season(self, state: dict[str, np.ndarray]) -> np.ndarray:
         """(B,) time of year of the coming step, a fraction in [0, 1)."""
-        return np.mod(state["start"] + state["day"] / self.year_length, 1.0)
+        out = np.empty(state["start"].shape[0])
+        _seasons(state["start"], state["day"], self.year_length, out)
+        return out
 
     def yields(self, state: dict[str, np.ndarray]) -> np.ndarray:
         """(B, I, K) what each item delivers on the coming step, in need units.
@@ -132,25 +256,11 @@ class DriftWorld(World):
         The outcome model of this world at the current time, for planners and
         controllers (it changes with the season).
         """
-        multiplier = season_yield(self.season(state), self.peaks, self.seasonal, self.amplitude)
-        return multiplier[:, :, None] * self.effects[None]
-
-    def step(self, state, actions, body: BodyState, rng: CopyStreams):
-        season = self.season(state)
-        batch = actions.shape[0]
-        intake = self.yields(state)[np.arange(batch), actions]
-        effects = Effects(intake=intake, activity=np.zeros(batch), task_reward=np.zeros(batch),
-                          events={"item": actions.copy(), "season": season})
-        new_state = {"day": state["day"] + 1, "start": state["start"],
-                     "last_outcome": intake / self.physiology.band}
-        return new_state, effects
-
-    def observe(self, state):
-        parts = [state["last_outcome"]]
-        if self.show_season:
-            angle = 2.0 * np.pi * self.season(state)
-            parts += [np.cos(angle)[:, None], np.sin(angle)[:, None]]
-        return np.concatenate(parts, axis=1)
+        batch = state["start"].shape[0]
+        out = np.empty((batch,) + self.effects.shape)
+        _yields(state["start"], state["day"], self.year_length, self.effects, self.peaks,
+                self.seasonal, self.amplitude, out)
+        return out
 
     def text(self, state, index):
         season = float(self.season(state)[index])

@@ -6,11 +6,25 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
+from numba import njit
 
+from needbench.envs.engine import (
+    AMBIENT,
+    COUNTERS,
+    FORCING,
+    INTAKE,
+    KEYS,
+    OBSERVATION,
+    OPTIONS,
+    WORLD_OFFSET,
+    observe_internal,
+    reset_body,
+    settle_all,
+)
 from needbench.envs.errors import ConfigError, check_finite, check_non_negative, check_range
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.streams import CopyStreams
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+from needbench.envs.physiology import Physiology
+from needbench.envs.streams import draw_uniform
+from needbench.envs.task import NeedEnv, NeedVectorEnv, World
 
 #: What the actions do, in order (the index is the action).
 ACTIONS = ("rest", "eat", "drink", "put on oilskin", "take off oilskin")
@@ -26,6 +40,97 @@ def _whole_number(path: str, value: Any, low: int) -> int:
     return int(value)
 
 
+@njit(cache=True)
+def weather_step(b, action, since_cue, coat, probability, event_length, keys, counters):
+    """Advance copy ``b``'s oilskin and warning clock one step; return whether the horn sounds.
+
+    One uniform per copy per step, drawn whatever the weather and used only
+    by a calm copy (so that every copy draws the same count).
+    """
+    if action == PUT_ON:
+        coat[b] = True
+    elif action == TAKE_OFF:
+        coat[b] = False
+    since = since_cue[b]
+    if since >= 0:
+        since += 1
+    if since >= event_length:
+        since = IDLE
+    u = draw_uniform(keys, counters, b)
+    cue = since == IDLE and u < probability
+    if cue:
+        since = 0
+    since_cue[b] = since
+    return cue
+
+
+@njit(cache=True)
+def observe_weather(b, since_cue, coat, event_length, clock, engine):
+    """Copy ``b``'s observation: deviations, then cue, time since the cue (if shown), coat."""
+    observe_internal(engine, b)
+    observation = engine[OBSERVATION]
+    offset = int(engine[OPTIONS][WORLD_OFFSET])
+    since = since_cue[b]
+    observation[b, offset] = np.float32(1.0 if since == 0 else 0.0)
+    column = offset + 1
+    if clock:
+        # Fraction of the warning-plus-squall span gone by; 1 when none is under way.
+        observation[b, column] = np.float32(since / event_length if since >= 0 else 1.0)
+        column += 1
+    observation[b, column] = np.float32(1.0 if coat[b] else 0.0)
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    _, event_length, _, _, _, _, _, _, _, clock = constants
+    since_cue, coat = state
+    for b in range(mask.shape[0]):
+        if mask[b]:
+            reset_body(engine, b)
+            since_cue[b] = IDLE
+            coat[b] = False
+            observe_weather(b, since_cue, coat, event_length, clock, engine)
+
+
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    (warning_delay, event_length, probability, shield, ambient_default, chill, meal, drink,
+     coat_cost, clock) = constants
+    since_cue, coat = state
+    cue_event, squall_event, prepared_event = events
+    intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
+    keys, counters = engine[KEYS], engine[COUNTERS]
+    for b in range(actions.shape[0]):
+        action = actions[b]
+        cue = weather_step(b, action, since_cue, coat, probability, event_length, keys, counters)
+        since = since_cue[b]
+        squall = since >= warning_delay and since < event_length
+        worn = 1.0 if coat[b] else 0.0
+        # The old engine's order: exposure = squall * (1 - shield * coat), then
+        # ambient - exposure * chill, intake = eat * meal + drink * water.
+        exposure = (1.0 if squall else 0.0) * (1.0 - shield * worn)
+        eat = 1.0 if action == EAT else 0.0
+        sip = 1.0 if action == DRINK else 0.0
+        for k in range(intake.shape[1]):
+            ambient[b, k] = ambient_default[k] - exposure * chill[k]
+            intake[b, k] = eat * meal[k] + sip * drink[k]
+            forcing[b, k] = -(worn * coat_cost[k])
+        cue_event[b] = cue
+        squall_event[b] = squall
+        prepared_event[b] = coat[b]
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_weather(b, since_cue, coat, event_length, clock, engine)
+
+
+@njit(cache=True)
+def _observe(constants, state, engine):
+    _, event_length, _, _, _, _, _, _, _, clock = constants
+    since_cue, coat = state
+    for b in range(since_cue.shape[0]):
+        observe_weather(b, since_cue, coat, event_length, clock, engine)
+
+
 class ForewarnWorld(World):
     """Random warnings, each followed after exactly ``warning_delay`` steps by a squall.
 
@@ -34,6 +139,8 @@ class ForewarnWorld(World):
     oilskin is worn. On the step a warning sounds ``since_cue`` is 0; the
     squall blows while ``warning_delay <= since_cue < warning_delay +
     squall_length``; a new warning can sound only when the last squall is over.
+    Events in ``info``: ``cue``, ``disturbance`` (the squall blew) and
+    ``prepared`` (the oilskin was worn), all bool.
     """
 
     parameters = {
@@ -48,6 +155,10 @@ class ForewarnWorld(World):
         "drink": 0.5,
         "clock": True,
     }
+    reset_kernel = staticmethod(_reset)
+    step_kernel = staticmethod(_step)
+    observe_kernel = staticmethod(_observe)
+    uses_ambient = True
 
     def __init__(self, physiology: Physiology, warning_delay: int = 10, squall_length: int = 20,
                  warning_probability: float = 0.03, chill: float = 6.0,
@@ -96,38 +207,17 @@ class ForewarnWorld(World):
             out[self.physiology.index[need]] = value
         return out
 
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
-        return {"since_cue": np.full(batch, IDLE, np.int64), "coat": np.zeros(batch, bool)}
+    def constants(self) -> tuple:
+        return (self.warning_delay, self.event_length, self.warning_probability, self.shield,
+                self.physiology.ambient, self.chill_vector, self.meal_vector, self.drink_vector,
+                self.coat_cost_vector, self.clock)
 
-    def step(self, state, actions, body: BodyState, rng: CopyStreams):
-        coat = np.where(actions == PUT_ON, True, np.where(actions == TAKE_OFF, False,
-                                                           state["coat"]))
-        since = state["since_cue"]
-        since = np.where(since >= 0, since + 1, since)
-        since = np.where(since >= self.event_length, IDLE, since)
-        # One draw per copy per step, used only by idle copies.
-        cue = (since == IDLE) & (rng.random((actions.shape[0],)) < self.warning_probability)
-        since = np.where(cue, 0, since)
-        squall = (since >= self.warning_delay) & (since < self.event_length)
-        exposure = squall * (1.0 - self.shield * coat)
-        ambient = self.physiology.ambient - exposure[:, None] * self.chill_vector
-        intake = ((actions == EAT)[:, None] * self.meal_vector
-                  + (actions == DRINK)[:, None] * self.drink_vector)
-        forcing = -(coat[:, None] * self.coat_cost_vector)
-        batch = actions.shape[0]
-        effects = Effects(intake=intake, activity=np.zeros(batch), task_reward=np.zeros(batch),
-                          ambient=ambient, forcing=forcing,
-                          events={"cue": cue, "disturbance": squall, "prepared": coat.copy()})
-        return {"since_cue": since, "coat": coat}, effects
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
+        return {"since_cue": np.full(batch, IDLE, np.int64), "coat": np.zeros(batch, np.bool_)}
 
-    def observe(self, state):
-        since = state["since_cue"]
-        parts = [(since == 0).astype(np.float64)]
-        if self.clock:
-            # Fraction of the warning-plus-squall span gone by; 1 when none is under way.
-            parts.append(np.where(since >= 0, since / self.event_length, 1.0))
-        parts.append(state["coat"].astype(np.float64))
-        return np.stack(parts, axis=1)
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {"cue": np.zeros(batch, np.bool_), "disturbance": np.zeros(batch, np.bool_),
+                "prepared": np.zeros(batch, np.bool_)}
 
     def text(self, state, index):
         since = int(state["since_cue"][index])
