@@ -8,8 +8,8 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     COUNTERS,
     INTAKE,
@@ -46,13 +46,13 @@ ALLOSTASIS_RATE = 0.002
 ALLOSTATIC_NEEDS = ("energy", "water")
 
 
-@njit(cache=True)
+@inline_kernel
 def time_of_year(start, day, year_length):
     """Time of year, a fraction in [0, 1), ``day`` steps after a year began at ``start``."""
     return (start + day / year_length) % 1.0
 
 
-@njit(cache=True)
+@inline_kernel
 def yield_multiplier(phase, peak, seasonal, amplitude):
     """m = 1 + amplitude * cos(2 pi (phase - peak)) for a seasonal item, 1 otherwise."""
     if not seasonal:
@@ -60,20 +60,20 @@ def yield_multiplier(phase, peak, seasonal, amplitude):
     return 1.0 + amplitude * math.cos(2.0 * math.pi * (phase - peak))
 
 
-@njit(cache=True)
+@kernel
 def _multipliers(phase, peaks, seasonal, amplitude, out):
     for b in range(phase.shape[0]):
         for i in range(peaks.shape[0]):
             out[b, i] = yield_multiplier(phase[b], peaks[i], seasonal[i], amplitude)
 
 
-@njit(cache=True)
+@kernel
 def _seasons(start, day, year_length, out):
     for b in range(start.shape[0]):
         out[b] = time_of_year(start[b], day[b], year_length)
 
 
-@njit(cache=True)
+@kernel
 def _yields(start, day, year_length, effects, peaks, seasonal, amplitude, out):
     for b in range(start.shape[0]):
         phase = time_of_year(start[b], day[b], year_length)
@@ -98,7 +98,7 @@ def season_yield(phase: np.ndarray, peaks: np.ndarray, seasonal: np.ndarray,
     return out
 
 
-@njit(cache=True)
+@inline_kernel
 def observe_harvest(b, phase, last_outcome, show_season, engine):
     """Copy ``b``'s observation: deviations, what the last item delivered (as in
     Menu), then cos and sin of the time of year if shown."""
@@ -111,7 +111,7 @@ def observe_harvest(b, phase, last_outcome, show_season, engine):
         observation[b, column + 1] = np.float32(math.sin(angle))
 
 
-@njit(cache=True)
+@kernel
 def _reset(mask, constants, state, engine):
     _, _, _, _, year_length, random_start, show_season, _ = constants
     day, start, last_outcome = state
@@ -122,12 +122,13 @@ def _reset(mask, constants, state, engine):
             u = draw_uniform(engine[KEYS], engine[COUNTERS], b)
             start[b] = u if random_start else 0.0
             day[b] = 0
-            last_outcome[b, :] = 0.0
+            for k in range(last_outcome.shape[1]):
+                last_outcome[b, k] = 0.0
             observe_harvest(b, time_of_year(start[b], 0, year_length), last_outcome,
                             show_season, engine)
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     effects, peaks, seasonal, amplitude, year_length, _, show_season, band = constants
     day, start, last_outcome = state
@@ -149,7 +150,7 @@ def _step(actions, constants, state, events, engine):
                         show_season, engine)
 
 
-@njit(cache=True)
+@kernel
 def _observe(constants, state, engine):
     _, _, _, _, year_length, _, show_season, _ = constants
     day, start, last_outcome = state

@@ -6,8 +6,8 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     AMBIENT,
     COUNTERS,
@@ -40,7 +40,7 @@ def _whole_number(path: str, value: Any, low: int) -> int:
     return int(value)
 
 
-@njit(cache=True)
+@inline_kernel
 def weather_step(b, action, since_cue, coat, probability, event_length, keys, counters):
     """Advance copy ``b``'s oilskin and warning clock one step; return whether the horn sounds.
 
@@ -64,7 +64,7 @@ def weather_step(b, action, since_cue, coat, probability, event_length, keys, co
     return cue
 
 
-@njit(cache=True)
+@inline_kernel
 def observe_weather(b, since_cue, coat, event_length, clock, engine):
     """Copy ``b``'s observation: deviations, then cue, time since the cue (if shown), coat."""
     observe_internal(engine, b)
@@ -80,7 +80,7 @@ def observe_weather(b, since_cue, coat, event_length, clock, engine):
     observation[b, column] = np.float32(1.0 if coat[b] else 0.0)
 
 
-@njit(cache=True)
+@kernel
 def _reset(mask, constants, state, engine):
     _, event_length, _, _, _, _, _, _, _, clock = constants
     since_cue, coat = state
@@ -92,7 +92,7 @@ def _reset(mask, constants, state, engine):
             observe_weather(b, since_cue, coat, event_length, clock, engine)
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     (warning_delay, event_length, probability, shield, ambient_default, chill, meal, drink,
      coat_cost, clock) = constants
@@ -123,7 +123,7 @@ def _step(actions, constants, state, events, engine):
         observe_weather(b, since_cue, coat, event_length, clock, engine)
 
 
-@njit(cache=True)
+@kernel
 def _observe(constants, state, engine):
     _, event_length, _, _, _, _, _, _, _, clock = constants
     since_cue, coat = state
