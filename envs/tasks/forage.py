@@ -25,7 +25,23 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
+from numba import njit
 
+from needbench.envs.engine import (
+    ACTIVITY,
+    AMBIENT,
+    COUNTERS,
+    FORCING,
+    INTAKE,
+    KEYS,
+    OBSERVATION,
+    OPTIONS,
+    TASK,
+    WORLD_OFFSET,
+    observe_internal,
+    reset_body,
+    settle_all,
+)
 from needbench.envs.errors import (
     ConfigError,
     check_choice,
@@ -34,9 +50,9 @@ from needbench.envs.errors import (
     check_positive,
     check_range,
 )
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.streams import CopyStreams
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+from needbench.envs.physiology import Physiology
+from needbench.envs.streams import draw_uniform
+from needbench.envs.task import NeedEnv, NeedVectorEnv, World
 
 #: Cell types. Open cells (everything but shade and wall) take the sun.
 SAND, SHADE, WALL, WATER, FOOD = 0, 1, 2, 3, 4
@@ -47,20 +63,12 @@ MOVES = np.array([[0, 0], [-1, 0], [0, 1], [1, 0], [0, -1]], dtype=np.int64)
 #: The cell type that serves each need. Shade serves temperature both ways: its
 #: air is neutral, so it cools a hot body by day and warms a cold one at night.
 SOURCE_CELLS = {"energy": FOOD, "water": WATER, "temperature": SHADE}
-#: Cell types of the three sources in the full view's order: food, water, shade.
-SOURCE_KINDS = np.array([FOOD, WATER, SHADE], dtype=np.int8)[:, None, None]
-#: Columns of the full view's world features holding the row and column offsets.
-FULL_ROW_OFFSETS = [4, 7, 9]
-FULL_COLUMN_OFFSETS = [5, 8, 10]
-#: Local-view channels (wall, water, shade) of each cell type.
-WINDOW_CHANNELS = np.array([[0, 0, 0], [0, 0, 1], [1, 0, 0], [0, 1, 0], [0, 0, 0]],
-                           dtype=np.float64)
 #: Characters of the text frame, by cell type (food: see ``ForageWorld.text``).
 CELL_CHARACTERS = (".", ":", "#", "~", "F")
 #: Side of one cell in the picture, pixels.
 CELL_PIXELS = 8
 
-_FAR = 1 << 30  # distance given to cells that are not sources
+_FAR = 1 << 30  # farther than any cell: the distance of "no source found yet"
 
 
 def check_whole(path: str, value: Any, low: int, high: int) -> int:
@@ -80,8 +88,264 @@ def grid_shape(size: Any) -> tuple[int, int]:
     return (check_whole("size", size[0], 5, 99), check_whole("size", size[1], 5, 99))
 
 
+# --- the compiled kernels ---------------------------------------------------------------
+# Constants tuple (ForageWorld.constants): the garden, food and water, the climate tables
+# by hour, the conversions into the body's units and the view.
+(_SITE_ROWS, _SITE_COLUMNS, _PILLAR_CHANCE, _FOOD_PATCHES, _WATER_CELLS, _PALMS,
+ _FOOD_CAPACITY, _BITE, _REGROWTH, _OPEN_AIR, _DAYLIGHT, _DAY_SINE, _DAY_COSINE, _EXPOSURE,
+ _WATER_PER_CELL, _ACTIVITY_PER_ACTION, _FOOD_TO_INTAKE, _WATER_TO_INTAKE, _NEUTRAL_AMBIENT,
+ _AIR_TO_AMBIENT, _SUN_TO_FORCING, _FULL_VIEW, _VIEW_RADIUS) = range(23)
+#: Kinds of source in the order of the nearest-source search (and of the full view).
+FOOD_KIND, WATER_KIND, SHADE_KIND = 0, 1, 2
+SOURCE_KIND = {"energy": FOOD_KIND, "water": WATER_KIND, "temperature": SHADE_KIND}
+
+
+@njit(cache=True)
+def holds_a_bite(stock, bite):
+    """Whether a bush holding ``stock`` offers one full bite (a 1e-12 tolerance)."""
+    return stock >= bite - 1e-12
+
+
+@njit(cache=True)
+def nearest_sources(b, terrain, stock, position, bite):
+    """Flat cell indices of copy ``b``'s nearest food, water and shade (-1: none).
+
+    One scan of the grid finds all three by Manhattan distance from the agent,
+    ties to the first cell in row-major order. Food counts only bushes holding
+    a full bite, unless none does (then every bush).
+    """
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    row, column = position[b, 0], position[b, 1]
+    ready = food = water = shade = -1
+    ready_distance = food_distance = water_distance = shade_distance = _FAR
+    for r in range(rows):
+        row_distance = abs(r - row)
+        for c in range(columns):
+            cell = terrain[b, r, c]
+            if cell == SAND or cell == WALL:
+                continue
+            distance = row_distance + abs(c - column)
+            if cell == FOOD:
+                if distance < food_distance:
+                    food, food_distance = r * columns + c, distance
+                if distance < ready_distance and holds_a_bite(stock[b, r, c], bite):
+                    ready, ready_distance = r * columns + c, distance
+            elif cell == WATER:
+                if distance < water_distance:
+                    water, water_distance = r * columns + c, distance
+            elif distance < shade_distance:  # SHADE
+                shade, shade_distance = r * columns + c, distance
+    if ready >= 0:
+        food = ready
+    return food, water, shade
+
+
+@njit(cache=True)
+def offset_to(b, cell, columns, position):
+    """(rows, columns) offset from copy ``b``'s agent to flat ``cell``; (0, 0) for -1."""
+    if cell < 0:
+        return 0, 0
+    return cell // columns - position[b, 0], cell % columns - position[b, 1]
+
+
+@njit(cache=True)
+def _nearest_offsets(terrain, stock, position, bite, kind, out):
+    """``out`` (B, 2): each copy's offset to its nearest source of ``kind``."""
+    columns = terrain.shape[2]
+    for b in range(position.shape[0]):
+        cell = nearest_sources(b, terrain, stock, position, bite)[kind]
+        out[b, 0], out[b, 1] = offset_to(b, cell, columns, position)
+
+
+@njit(cache=True)
+def _source_masks(terrain, stock, cell_type, bite, out):
+    """``out`` (B, H, W): the cells of ``cell_type`` that serve now (food: ready bushes,
+    or every bush in a copy where none is ready)."""
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    for b in range(terrain.shape[0]):
+        any_ready = False
+        if cell_type == FOOD:
+            for r in range(rows):
+                for c in range(columns):
+                    if terrain[b, r, c] == FOOD and holds_a_bite(stock[b, r, c], bite):
+                        any_ready = True
+        for r in range(rows):
+            for c in range(columns):
+                out[b, r, c] = terrain[b, r, c] == cell_type and (
+                    not any_ready or holds_a_bite(stock[b, r, c], bite))
+
+
+@njit(cache=True)
+def _by_hour(clock, table, out):
+    """``out[i] = table[clock[i] mod day_length]``: the kernels' lookup of the hour."""
+    for i in range(clock.shape[0]):
+        out[i] = table[clock[i] % table.shape[0]]
+
+
+@njit(cache=True)
+def lay_out_garden(b, constants, terrain, stock, position, clock, sort_keys, keys, counters):
+    """A fresh garden for copy ``b`` from its stream: the outer wall, pillars (one
+    uniform per lattice site), a random order of the free cells (one uniform per
+    cell, row-major; walls sorted last) whose first places take food, water, palms
+    and the start cell; palm shade on the palm and its four neighbours; full bushes."""
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    site_rows, site_columns = constants[_SITE_ROWS], constants[_SITE_COLUMNS]
+    for r in range(rows):
+        for c in range(columns):
+            edge = r == 0 or r == rows - 1 or c == 0 or c == columns - 1
+            terrain[b, r, c] = WALL if edge else SAND
+    for j in range(site_rows.shape[0]):
+        pillar = draw_uniform(keys, counters, b) < constants[_PILLAR_CHANCE]
+        terrain[b, site_rows[j], site_columns[j]] = WALL if pillar else SAND
+    for r in range(rows):
+        for c in range(columns):
+            u = draw_uniform(keys, counters, b)
+            sort_keys[r * columns + c] = 2.0 if terrain[b, r, c] == WALL else u
+    # Keys are distinct almost surely, so any sort gives numpy's order of the free
+    # cells; the walls' order among themselves is never read.
+    order = np.argsort(sort_keys)
+    n_food, n_water, n_palms = (constants[_FOOD_PATCHES], constants[_WATER_CELLS],
+                                constants[_PALMS])
+    for j in range(n_food + n_water):
+        terrain[b, order[j] // columns, order[j] % columns] = FOOD if j < n_food else WATER
+    for j in range(n_food + n_water, n_food + n_water + n_palms):
+        r, c = order[j] // columns, order[j] % columns  # palms stand inside the wall
+        for rr, cc in ((r, c), (r - 1, c), (r + 1, c), (r, c - 1), (r, c + 1)):
+            if terrain[b, rr, cc] == SAND:
+                terrain[b, rr, cc] = SHADE
+    start = order[n_food + n_water + n_palms]
+    position[b, 0], position[b, 1] = start // columns, start % columns
+    for r in range(rows):
+        for c in range(columns):
+            stock[b, r, c] = constants[_FOOD_CAPACITY] if terrain[b, r, c] == FOOD else 0.0
+    clock[b] = 0
+
+
+@njit(cache=True)
+def act(b, action, constants, terrain, stock, position, clock, events, engine):
+    """Copy ``b``'s world step: move, regrow, eat and drink, air and sun of the hour."""
+    eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event = events
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    target_row = position[b, 0] + MOVES[action, 0]
+    target_column = position[b, 1] + MOVES[action, 1]
+    bumped = terrain[b, target_row, target_column] == WALL
+    if not bumped:
+        position[b, 0], position[b, 1] = target_row, target_column
+    row, column = position[b, 0], position[b, 1]
+    cell = terrain[b, row, column]
+    # Regrow, then eat: off-bush stock is 0, so "eaten" is 0 there without a test.
+    regrowth, capacity = constants[_REGROWTH], constants[_FOOD_CAPACITY]
+    for r in range(rows):
+        for c in range(columns):
+            if terrain[b, r, c] == FOOD:
+                stock[b, r, c] = min(stock[b, r, c] + regrowth, capacity)
+            else:
+                stock[b, r, c] = 0.0
+    eaten = min(stock[b, row, column], constants[_BITE])
+    stock[b, row, column] -= eaten
+    drunk = constants[_WATER_PER_CELL][cell]
+    # The body feels the air and sun of the hour at which the step begins.
+    open_air = constants[_OPEN_AIR]
+    day_length = open_air.shape[0]
+    hour = clock[b] % day_length
+    exposure = constants[_EXPOSURE][cell]
+    air = open_air[hour] * exposure
+    sunlight = constants[_DAYLIGHT][hour] * exposure
+    food_to_intake, water_to_intake = constants[_FOOD_TO_INTAKE], constants[_WATER_TO_INTAKE]
+    neutral, air_to_ambient = constants[_NEUTRAL_AMBIENT], constants[_AIR_TO_AMBIENT]
+    sun_to_forcing = constants[_SUN_TO_FORCING]
+    intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
+    for k in range(intake.shape[1]):
+        intake[b, k] = eaten * food_to_intake[k] + drunk * water_to_intake[k]
+        ambient[b, k] = neutral[k] + air * air_to_ambient[k]
+        forcing[b, k] = sunlight * sun_to_forcing[k]
+    engine[ACTIVITY][b] = constants[_ACTIVITY_PER_ACTION][action]
+    engine[TASK][b] = 0.0
+    eaten_event[b], drunk_event[b], bumped_event[b] = eaten, drunk, bumped
+    sun_event[b], air_event[b], time_event[b] = sunlight, air, hour / day_length
+    clock[b] += 1
+
+
+@njit(cache=True)
+def observe_garden(b, constants, terrain, stock, position, clock, engine):
+    """Copy ``b``'s observation: deviations, then position, time of day and the view.
+
+    Every feature lies inside its bounds by construction (the agent never leaves
+    the interior, stocks never pass the capacity), so nothing is clipped.
+    """
+    observe_internal(engine, b)
+    observation = engine[OBSERVATION]
+    at = int(engine[OPTIONS][WORLD_OFFSET])
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    row, column = position[b, 0], position[b, 1]
+    day_sine = constants[_DAY_SINE]
+    hour = clock[b] % day_sine.shape[0]
+    observation[b, at] = np.float32(row / (rows - 1))
+    observation[b, at + 1] = np.float32(column / (columns - 1))
+    observation[b, at + 2] = np.float32(day_sine[hour])
+    observation[b, at + 3] = np.float32(constants[_DAY_COSINE][hour])
+    capacity = constants[_FOOD_CAPACITY]
+    if constants[_FULL_VIEW]:
+        food, water, shade = nearest_sources(b, terrain, stock, position, constants[_BITE])
+        slot = at + 4
+        for kind, cell in enumerate((food, water, shade)):
+            row_offset, column_offset = offset_to(b, cell, columns, position)
+            observation[b, slot] = np.float32(row_offset / (rows - 1))
+            observation[b, slot + 1] = np.float32(column_offset / (columns - 1))
+            slot += 2
+            if kind == FOOD_KIND:
+                held = stock[b, food // columns, food % columns] if food >= 0 else 0.0
+                observation[b, slot] = np.float32(held / capacity)
+                slot += 1
+    else:
+        # Clipping maps cells beyond the grid onto the outer wall, which is what the
+        # window should show there. Channels: wall, water, shade, food stock.
+        radius = constants[_VIEW_RADIUS]
+        side = 2 * radius + 1
+        cells = side * side
+        for i in range(side):
+            r = min(max(row - radius + i, 0), rows - 1)
+            for j in range(side):
+                c = min(max(column - radius + j, 0), columns - 1)
+                cell = terrain[b, r, c]
+                slot = at + 4 + i * side + j
+                observation[b, slot] = np.float32(cell == WALL)
+                observation[b, slot + cells] = np.float32(cell == WATER)
+                observation[b, slot + 2 * cells] = np.float32(cell == SHADE)
+                observation[b, slot + 3 * cells] = np.float32(stock[b, r, c] / capacity)
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    terrain, stock, position, clock = state
+    sort_keys = np.empty(terrain.shape[1] * terrain.shape[2])
+    for b in range(mask.shape[0]):
+        if mask[b]:
+            reset_body(engine, b)
+            lay_out_garden(b, constants, terrain, stock, position, clock, sort_keys,
+                           engine[KEYS], engine[COUNTERS])
+            observe_garden(b, constants, terrain, stock, position, clock, engine)
+
+
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    terrain, stock, position, clock = state
+    for b in range(actions.shape[0]):
+        act(b, actions[b], constants, terrain, stock, position, clock, events, engine)
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_garden(b, constants, terrain, stock, position, clock, engine)
+
+
+@njit(cache=True)
+def _observe(constants, state, engine):
+    terrain, stock, position, clock = state
+    for b in range(position.shape[0]):
+        observe_garden(b, constants, terrain, stock, position, clock, engine)
+
+
 class ForageWorld(World):
-    """B walled oasis gardens, moved together with array operations only.
+    """B walled oasis gardens, stepped by compiled kernels copy by copy.
 
     Actions: 0 stay, 1 north, 2 east, 3 south, 4 west. A move into a wall
     leaves the agent where it is (``bumped`` in info) but still costs the
@@ -96,7 +360,8 @@ class ForageWorld(World):
 
     Sources for reactive controllers: :meth:`source_mask`, :meth:`sources`
     and :meth:`nearest_source` (Manhattan distance, ignoring pillars: pillars
-    stand alone, so a detour round one costs at most two steps).
+    stand alone, so a detour round one costs at most two steps); the agent's
+    cell: :meth:`position`. They call the compiled search the observation uses.
 
     No finite outcome model is offered (no ``model()``): the world state holds
     continuous food stocks that regrow, so no small finite table describes it.
@@ -122,6 +387,10 @@ class ForageWorld(World):
         "view_radius": 3,
     }
     spatial = True
+    uses_ambient = True
+    reset_kernel = staticmethod(_reset)
+    step_kernel = staticmethod(_step)
+    observe_kernel = staticmethod(_observe)
 
     def __init__(self, physiology: Physiology, size: Any = 9, food_patches: int = 3,
                  water_cells: int = 2, palms: int = 2, pillar_chance: float = 0.35,
@@ -160,14 +429,6 @@ class ForageWorld(World):
         if wanted > always_free:
             raise ConfigError("size", size, f"a grid whose {always_free} surely free cells hold "
                               f"food_patches + water_cells + palms + 1 start cell = {wanted}")
-        # Manhattan distance tables: row_distance[r] (H,) = |r - rows|, likewise columns.
-        self.row_distance = np.abs(np.arange(rows)[:, None] - np.arange(rows)[None, :])
-        self.column_distance = np.abs(np.arange(columns)[:, None] - np.arange(columns)[None, :])
-        # cell_distance[c] (H * W,) = Manhattan distance from flat cell c to every cell,
-        # one gather per step instead of a broadcast sum.
-        self.cell_distance = (self.row_distance[:, None, :, None]
-                              + self.column_distance[None, :, None, :]).reshape(
-                                  rows * columns, rows * columns).astype(np.int32)
 
         # Per-need conversion vectors (K,): world quantities are in band units of
         # the need they touch; the body wants need units per unit time.
@@ -191,8 +452,8 @@ class ForageWorld(World):
         self.air_swing = 0.5 * (self.air_day - self.air_night)
         # Tables by hour (clock mod day_length) and by cell type keep the hot path to a
         # few lookups instead of trigonometry and comparisons every step.
-        angle = (2.0 * math.pi / self.day_length) * np.arange(self.day_length)
-        self.day_sine, self.day_cosine = np.sin(angle), np.cos(angle)
+        self.day_angle = (2.0 * math.pi / self.day_length) * np.arange(self.day_length)
+        self.day_sine, self.day_cosine = np.sin(self.day_angle), np.cos(self.day_angle)
         self.open_air = self.air_mean + self.air_swing * self.day_sine
         self.daylight = np.maximum(self.day_sine, 0.0)
         self.exposure = np.array([1.0, 0.0, 1.0, 1.0, 1.0])  # by cell type: shade has none
@@ -218,91 +479,60 @@ class ForageWorld(World):
             names = list(head) + [f"window/{channel}/{cell}" for channel in
                                   ("wall", "water", "shade", "food") for cell in window]
             low = head_low + [0.0] * (4 * len(window))
-            self.window_offsets = np.arange(-self.view_radius, self.view_radius + 1)
         self.feature_names = tuple(names)
         self.feature_low = np.array(low)
         self.feature_high = np.ones(len(names))
 
-    # --- layout ---------------------------------------------------------------
+    # --- the kernels' inputs -----------------------------------------------------
 
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
-        rows, columns = self.rows, self.columns
-        terrain = np.full((batch, rows, columns), SAND, dtype=np.int8)
-        terrain[:, 0, :] = terrain[:, -1, :] = WALL
-        terrain[:, :, 0] = terrain[:, :, -1] = WALL
-        pillars = rng.random((batch, self.site_rows.size)) < self.pillar_chance
-        terrain[:, self.site_rows, self.site_columns] = np.where(pillars, WALL, SAND)
-        # A random order of the free cells (walls sorted last); food, water, palms and
-        # the start cell take its first places. Every copy draws H * W numbers.
-        flat = terrain.reshape(batch, -1)
-        keys = rng.random((batch, rows * columns))
-        keys[flat == WALL] = 2.0
-        order = np.argsort(keys, axis=1)
-        copies = np.arange(batch)[:, None]
-        n_food, n_water, n_palms = self.food_patches, self.water_cells, self.palms
-        flat[copies, order[:, :n_food]] = FOOD
-        flat[copies, order[:, n_food:n_food + n_water]] = WATER
-        palm = np.zeros((batch, rows * columns), dtype=bool)
-        palm[copies, order[:, n_food + n_water:n_food + n_water + n_palms]] = True
-        palm = palm.reshape(batch, rows, columns)
-        canopy = palm.copy()  # a palm shades its own cell and its four neighbours
-        canopy[:, 1:, :] |= palm[:, :-1, :]
-        canopy[:, :-1, :] |= palm[:, 1:, :]
-        canopy[:, :, 1:] |= palm[:, :, :-1]
-        canopy[:, :, :-1] |= palm[:, :, 1:]
-        terrain[canopy & (terrain == SAND)] = SHADE
-        start = order[:, n_food + n_water + n_palms]
-        position = np.stack([start // columns, start % columns], axis=1).astype(np.int64)
-        stock = np.where(terrain == FOOD, self.food_capacity, 0.0)
-        return {"terrain": terrain, "stock": stock, "position": position,
+    def constants(self) -> tuple:
+        return (self.site_rows.astype(np.int64), self.site_columns.astype(np.int64),
+                self.pillar_chance, self.food_patches, self.water_cells, self.palms,
+                self.food_capacity, self.bite, self.regrowth, self.open_air, self.daylight,
+                self.day_sine, self.day_cosine, self.exposure, self.water_per_cell,
+                self.activity_per_action, self.food_to_intake, self.water_to_intake,
+                self.neutral_ambient, self.air_to_ambient, self.sun_to_forcing,
+                self.view == "full", self.view_radius)
+
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
+        shape = (batch, self.rows, self.columns)
+        return {"terrain": np.full(shape, WALL, dtype=np.int8), "stock": np.zeros(shape),
+                "position": np.ones((batch, 2), dtype=np.int64),
                 "clock": np.zeros(batch, dtype=np.int64)}
+
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {"eaten": np.zeros(batch), "drunk": np.zeros(batch),
+                "bumped": np.zeros(batch, dtype=np.bool_), "sunlight": np.zeros(batch),
+                "air_temperature": np.zeros(batch), "time_of_day": np.zeros(batch)}
 
     # --- time of day ----------------------------------------------------------
 
+    def _by_hour(self, clock, table: np.ndarray):
+        clock = np.asarray(clock, dtype=np.int64)
+        out = np.empty(clock.size)
+        _by_hour(clock.reshape(-1), table, out)
+        return out.reshape(clock.shape)[()]
+
     def phase(self, clock: np.ndarray) -> np.ndarray:
         """Angle of the day, radians: 0 at dawn, pi/2 at noon, 3 pi/2 at midnight."""
-        return (2.0 * math.pi / self.day_length) * (clock % self.day_length)
+        return self._by_hour(clock, self.day_angle)
 
     def air_temperature(self, clock: np.ndarray) -> np.ndarray:
         """Open-air temperature, band units of temperature above the neutral ambient:
         ``air_mean + air_swing * sin(phase)``, peaking at ``air_day`` at noon and
-        falling to ``air_night`` at midnight."""
-        return self.air_mean + self.air_swing * np.sin(self.phase(clock))
+        falling to ``air_night`` at midnight (the table the step reads)."""
+        return self._by_hour(clock, self.open_air)
 
-    # --- dynamics -------------------------------------------------------------
+    # --- the agent and the sources ------------------------------------------------
 
-    def step(self, state, actions, body: BodyState, rng: CopyStreams):
-        terrain, position, clock = state["terrain"], state["position"], state["clock"]
-        copies = np.arange(position.shape[0])
-        target = position + MOVES[actions]
-        bumped = terrain[copies, target[:, 0], target[:, 1]] == WALL
-        position = np.where(bumped[:, None], position, target)
-        row, column = position[:, 0], position[:, 1]
-        cell = terrain[copies, row, column]
-        # Regrow, then eat: off-bush stock is 0, so "eaten" is 0 there without a test.
-        stock = np.where(terrain == FOOD,
-                         np.minimum(state["stock"] + self.regrowth, self.food_capacity), 0.0)
-        eaten = np.minimum(stock[copies, row, column], self.bite)
-        stock[copies, row, column] -= eaten
-        drunk = self.water_per_cell[cell]
-        # The body feels the air and sun of the hour at which the step begins.
-        hour = clock % self.day_length
-        exposure = self.exposure[cell]
-        air = self.open_air[hour] * exposure
-        sunlight = self.daylight[hour] * exposure
-        effects = Effects(
-            intake=eaten[:, None] * self.food_to_intake + drunk[:, None] * self.water_to_intake,
-            activity=self.activity_per_action[actions],
-            task_reward=np.zeros(position.shape[0]),
-            ambient=self.neutral_ambient + air[:, None] * self.air_to_ambient,
-            forcing=sunlight[:, None] * self.sun_to_forcing,
-            events={"eaten": eaten, "drunk": drunk, "bumped": bumped, "sunlight": sunlight,
-                    "air_temperature": air, "time_of_day": hour / self.day_length},
-        )
-        return {"terrain": terrain, "stock": stock, "position": position,
-                "clock": clock + 1}, effects
+    def position(self, state: dict[str, np.ndarray]) -> np.ndarray:
+        """(B, 2) int64 row and column of each copy's agent (a copy of the state)."""
+        return state["position"].copy()
 
-    # --- sources --------------------------------------------------------------
+    def _check_source(self, need: str) -> None:
+        if need not in SOURCE_CELLS or need not in self.physiology.index:
+            served = [n for n in SOURCE_CELLS if n in self.physiology.index]
+            raise ConfigError("need", need, "a need with sources here: " + ", ".join(served))
 
     def source_mask(self, state: dict[str, np.ndarray], need: str) -> np.ndarray:
         """(B, H, W) bool: the cells that serve ``need`` now.
@@ -311,15 +541,11 @@ class ForageWorld(World):
         copy where none does: the agent should wait by one); ``water``: water
         cells; ``temperature``: shade.
         """
-        if need not in SOURCE_CELLS or need not in self.physiology.index:
-            served = [n for n in SOURCE_CELLS if n in self.physiology.index]
-            raise ConfigError("need", need, "a need with sources here: " + ", ".join(served))
+        self._check_source(need)
         terrain = state["terrain"]
-        mask = terrain == SOURCE_CELLS[need]
-        if need == "energy":
-            ready = mask & (state["stock"] >= self.bite - 1e-12)
-            mask = np.where(ready.any(axis=(1, 2))[:, None, None], ready, mask)
-        return mask
+        out = np.empty(terrain.shape, dtype=np.bool_)
+        _source_masks(terrain, state["stock"], SOURCE_CELLS[need], self.bite, out)
+        return out
 
     def sources(self, state: dict[str, np.ndarray]) -> dict[str, list[np.ndarray]]:
         """Positions of the sources of each need of the body, per copy.
@@ -339,60 +565,14 @@ class ForageWorld(World):
     def nearest_source(self, state: dict[str, np.ndarray], need: str) -> np.ndarray:
         """(B, 2) int64 offset (rows, columns) from the agent to its nearest source
         of ``need`` by Manhattan distance (ties: the first in row-major order);
-        (0, 0) on a source, and also in a copy that has none (e.g. ``palms=0``)."""
-        mask = self.source_mask(state, need)[:, None]
-        if need == "temperature" and self.palms == 0:  # shade exists iff there are palms
-            return np.zeros_like(state["position"])
-        row_offset, column_offset, _ = self._nearest(state["position"], mask)
-        return np.stack([row_offset[:, 0], column_offset[:, 0]], axis=1)
-
-    def _nearest(self, position: np.ndarray, masks: np.ndarray):
-        """Row offsets, column offsets and flat cell indices, each (B, S), of the
-        nearest cell of each of S non-empty masks (B, S, H, W)."""
-        batch, kinds = position.shape[0], masks.shape[1]
-        distance = self.cell_distance[position[:, 0] * self.columns + position[:, 1]]
-        index = np.where(masks.reshape(batch, kinds, -1), distance[:, None, :],
-                         np.int32(_FAR)).argmin(axis=2)
-        return (index // self.columns - position[:, 0, None],
-                index % self.columns - position[:, 1, None], index)
-
-    # --- observation ----------------------------------------------------------
-
-    def observe(self, state):
-        # Every feature lies inside [feature_low, feature_high] by construction (the
-        # agent never leaves the interior, stocks never pass the capacity), so no clip.
-        terrain, stock, position = state["terrain"], state["stock"], state["position"]
-        batch = position.shape[0]
-        hour = state["clock"] % self.day_length
-        features = np.empty((batch, len(self.feature_names)))
-        features[:, 0] = position[:, 0] / (self.rows - 1)
-        features[:, 1] = position[:, 1] / (self.columns - 1)
-        features[:, 2] = self.day_sine[hour]
-        features[:, 3] = self.day_cosine[hour]
-        if self.view == "full":
-            masks = terrain[:, None] == SOURCE_KINDS  # (B, 3, H, W): food, water, shade
-            ready = masks[:, 0] & (stock >= self.bite - 1e-12)
-            masks[:, 0] = np.where(ready.any(axis=(1, 2))[:, None, None], ready, masks[:, 0])
-            row_offset, column_offset, index = self._nearest(position, masks)
-            if self.palms == 0:  # no shade anywhere: report no offset
-                row_offset[:, 2] = column_offset[:, 2] = 0
-            features[:, FULL_ROW_OFFSETS] = row_offset / (self.rows - 1)
-            features[:, FULL_COLUMN_OFFSETS] = column_offset / (self.columns - 1)
-            features[:, 6] = (stock.reshape(batch, -1)[np.arange(batch), index[:, 0]]
-                              / self.food_capacity)
-        else:
-            # Clipping maps cells beyond the grid onto the outer wall, which is what
-            # the window should show there.
-            rows = np.clip(position[:, 0, None] + self.window_offsets, 0, self.rows - 1)
-            columns = np.clip(position[:, 1, None] + self.window_offsets, 0, self.columns - 1)
-            copies = np.arange(batch)[:, None, None]
-            rows, columns = rows[:, :, None], columns[:, None, :]
-            channels = WINDOW_CHANNELS[terrain[copies, rows, columns]]  # (B, S, S, 3)
-            cells = self.window_offsets.size ** 2
-            features[:, 4:4 + 3 * cells] = channels.transpose(0, 3, 1, 2).reshape(batch, -1)
-            features[:, 4 + 3 * cells:] = (stock[copies, rows, columns].reshape(batch, -1)
-                                           / self.food_capacity)
-        return features
+        (0, 0) on a source, and also in a copy that has none (e.g. ``palms=0``).
+        The observation's full view reads the same compiled search."""
+        self._check_source(need)
+        position = state["position"]
+        out = np.empty(position.shape, dtype=np.int64)
+        _nearest_offsets(state["terrain"], state["stock"], position, self.bite,
+                         SOURCE_KIND[need], out)
+        return out
 
     # --- rendering ------------------------------------------------------------
 
