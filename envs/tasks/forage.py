@@ -39,6 +39,7 @@ from needbench.envs.engine import (
     TASK,
     WORLD_OFFSET,
     observe_internal,
+    refresh,
     reset_body,
     settle_all,
 )
@@ -68,7 +69,7 @@ CELL_CHARACTERS = (".", ":", "#", "~", "F")
 #: Side of one cell in the picture, pixels.
 CELL_PIXELS = 8
 
-_FAR = 1 << 30  # farther than any cell: the distance of "no source found yet"
+_NONE = 1 << 62  # the search key of "no source found yet", above every real key
 
 
 def check_whole(path: str, value: Any, low: int, high: int) -> int:
@@ -89,12 +90,14 @@ def grid_shape(size: Any) -> tuple[int, int]:
 
 
 # --- the compiled kernels ---------------------------------------------------------------
-# Constants tuple (ForageWorld.constants): the garden, food and water, the climate tables
-# by hour, the conversions into the body's units and the view.
-(_SITE_ROWS, _SITE_COLUMNS, _PILLAR_CHANCE, _FOOD_PATCHES, _WATER_CELLS, _PALMS,
- _FOOD_CAPACITY, _BITE, _REGROWTH, _OPEN_AIR, _DAYLIGHT, _DAY_SINE, _DAY_COSINE, _EXPOSURE,
- _WATER_PER_CELL, _ACTIVITY_PER_ACTION, _FOOD_TO_INTAKE, _WATER_TO_INTAKE, _NEUTRAL_AMBIENT,
- _AIR_TO_AMBIENT, _SUN_TO_FORCING, _FULL_VIEW, _VIEW_RADIUS) = range(23)
+# The constants tuple (ForageWorld.constants) holds five groups:
+#   garden: (site_rows, site_columns, pillar_chance, food_patches, water_cells, palms)
+#   food: (food_capacity, bite, regrowth)
+#   climate: (open_air, daylight, day_sine, day_cosine, exposure), tables by hour or cell
+#   body: (water_per_cell, activity_per_action, food_to_intake, water_to_intake,
+#          neutral_ambient, air_to_ambient, sun_to_forcing), into the body's units
+#   view: (full_view, view_radius)
+# The kernels unpack them once per call and pass plain arrays and numbers per copy.
 #: Kinds of source in the order of the nearest-source search (and of the full view).
 FOOD_KIND, WATER_KIND, SHADE_KIND = 0, 1, 2
 SOURCE_KIND = {"energy": FOOD_KIND, "water": WATER_KIND, "temperature": SHADE_KIND}
@@ -111,33 +114,29 @@ def nearest_sources(b, terrain, stock, position, bite):
     """Flat cell indices of copy ``b``'s nearest food, water and shade (-1: none).
 
     One scan of the grid finds all three by Manhattan distance from the agent,
-    ties to the first cell in row-major order. Food counts only bushes holding
-    a full bite, unless none does (then every bush).
+    ties to the first cell in row-major order: each kind keeps the least key
+    distance * cells + flat index, which orders by distance, then by index.
+    Food counts only bushes holding a full bite, unless none does (then every bush).
     """
     rows, columns = terrain.shape[1], terrain.shape[2]
     row, column = position[b, 0], position[b, 1]
-    ready = food = water = shade = -1
-    ready_distance = food_distance = water_distance = shade_distance = _FAR
+    cells = rows * columns
+    ready = food = water = shade = _NONE
     for r in range(rows):
         row_distance = abs(r - row)
         for c in range(columns):
             cell = terrain[b, r, c]
-            if cell == SAND or cell == WALL:
-                continue
-            distance = row_distance + abs(c - column)
-            if cell == FOOD:
-                if distance < food_distance:
-                    food, food_distance = r * columns + c, distance
-                if distance < ready_distance and holds_a_bite(stock[b, r, c], bite):
-                    ready, ready_distance = r * columns + c, distance
-            elif cell == WATER:
-                if distance < water_distance:
-                    water, water_distance = r * columns + c, distance
-            elif distance < shade_distance:  # SHADE
-                shade, shade_distance = r * columns + c, distance
-    if ready >= 0:
+            key = (row_distance + abs(c - column)) * cells + r * columns + c
+            # Selects, not branches: the cell types are unpredictable to a branch.
+            food = min(food, key if cell == FOOD else _NONE)
+            ready = min(ready, key if cell == FOOD and holds_a_bite(stock[b, r, c], bite)
+                        else _NONE)
+            water = min(water, key if cell == WATER else _NONE)
+            shade = min(shade, key if cell == SHADE else _NONE)
+    if ready < _NONE:
         food = ready
-    return food, water, shade
+    return (food % cells if food < _NONE else -1, water % cells if water < _NONE else -1,
+            shade % cells if shade < _NONE else -1)
 
 
 @njit(cache=True)
@@ -183,29 +182,42 @@ def _by_hour(clock, table, out):
 
 
 @njit(cache=True)
-def lay_out_garden(b, constants, terrain, stock, position, clock, sort_keys, keys, counters):
+def lay_out_garden(b, garden, capacity, terrain, stock, position, clock, best_keys, order,
+                   keys, counters):
     """A fresh garden for copy ``b`` from its stream: the outer wall, pillars (one
     uniform per lattice site), a random order of the free cells (one uniform per
     cell, row-major; walls sorted last) whose first places take food, water, palms
-    and the start cell; palm shade on the palm and its four neighbours; full bushes."""
+    and the start cell; palm shade on the palm and its four neighbours; full bushes.
+
+    The order is numpy's ``argsort`` of the keys with the walls' keys set to 2, as
+    the layout was first defined; keys are distinct almost surely, so the order
+    of the free cells is unique. ``best_keys`` and ``order`` are work arrays of
+    the first ``food_patches + water_cells + palms + 1`` places.
+    """
+    site_rows, site_columns, pillar_chance, n_food, n_water, n_palms = garden
     rows, columns = terrain.shape[1], terrain.shape[2]
-    site_rows, site_columns = constants[_SITE_ROWS], constants[_SITE_COLUMNS]
     for r in range(rows):
         for c in range(columns):
             edge = r == 0 or r == rows - 1 or c == 0 or c == columns - 1
             terrain[b, r, c] = WALL if edge else SAND
     for j in range(site_rows.shape[0]):
-        pillar = draw_uniform(keys, counters, b) < constants[_PILLAR_CHANCE]
+        pillar = draw_uniform(keys, counters, b) < pillar_chance
         terrain[b, site_rows[j], site_columns[j]] = WALL if pillar else SAND
+    # The cells with the smallest keys, in order: an insertion into the first
+    # ``places`` slots as the keys are drawn (walls take key 2 and never enter).
+    places = n_food + n_water + n_palms + 1
+    for j in range(places):
+        best_keys[j] = 1.0  # above every uniform draw
     for r in range(rows):
         for c in range(columns):
             u = draw_uniform(keys, counters, b)
-            sort_keys[r * columns + c] = 2.0 if terrain[b, r, c] == WALL else u
-    # Keys are distinct almost surely, so any sort gives numpy's order of the free
-    # cells; the walls' order among themselves is never read.
-    order = np.argsort(sort_keys)
-    n_food, n_water, n_palms = (constants[_FOOD_PATCHES], constants[_WATER_CELLS],
-                                constants[_PALMS])
+            if terrain[b, r, c] == WALL or not u < best_keys[places - 1]:
+                continue
+            j = places - 1
+            while j > 0 and best_keys[j - 1] > u:
+                best_keys[j], order[j] = best_keys[j - 1], order[j - 1]
+                j -= 1
+            best_keys[j], order[j] = u, r * columns + c
     for j in range(n_food + n_water):
         terrain[b, order[j] // columns, order[j] % columns] = FOOD if j < n_food else WATER
     for j in range(n_food + n_water, n_food + n_water + n_palms):
@@ -217,90 +229,42 @@ def lay_out_garden(b, constants, terrain, stock, position, clock, sort_keys, key
     position[b, 0], position[b, 1] = start // columns, start % columns
     for r in range(rows):
         for c in range(columns):
-            stock[b, r, c] = constants[_FOOD_CAPACITY] if terrain[b, r, c] == FOOD else 0.0
+            stock[b, r, c] = capacity if terrain[b, r, c] == FOOD else 0.0
     clock[b] = 0
 
 
 @njit(cache=True)
-def act(b, action, constants, terrain, stock, position, clock, events, engine):
-    """Copy ``b``'s world step: move, regrow, eat and drink, air and sun of the hour."""
-    eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event = events
-    rows, columns = terrain.shape[1], terrain.shape[2]
-    target_row = position[b, 0] + MOVES[action, 0]
-    target_column = position[b, 1] + MOVES[action, 1]
-    bumped = terrain[b, target_row, target_column] == WALL
-    if not bumped:
-        position[b, 0], position[b, 1] = target_row, target_column
-    row, column = position[b, 0], position[b, 1]
-    cell = terrain[b, row, column]
-    # Regrow, then eat: off-bush stock is 0, so "eaten" is 0 there without a test.
-    regrowth, capacity = constants[_REGROWTH], constants[_FOOD_CAPACITY]
-    for r in range(rows):
-        for c in range(columns):
-            if terrain[b, r, c] == FOOD:
-                stock[b, r, c] = min(stock[b, r, c] + regrowth, capacity)
-            else:
-                stock[b, r, c] = 0.0
-    eaten = min(stock[b, row, column], constants[_BITE])
-    stock[b, row, column] -= eaten
-    drunk = constants[_WATER_PER_CELL][cell]
-    # The body feels the air and sun of the hour at which the step begins.
-    open_air = constants[_OPEN_AIR]
-    day_length = open_air.shape[0]
-    hour = clock[b] % day_length
-    exposure = constants[_EXPOSURE][cell]
-    air = open_air[hour] * exposure
-    sunlight = constants[_DAYLIGHT][hour] * exposure
-    food_to_intake, water_to_intake = constants[_FOOD_TO_INTAKE], constants[_WATER_TO_INTAKE]
-    neutral, air_to_ambient = constants[_NEUTRAL_AMBIENT], constants[_AIR_TO_AMBIENT]
-    sun_to_forcing = constants[_SUN_TO_FORCING]
-    intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
-    for k in range(intake.shape[1]):
-        intake[b, k] = eaten * food_to_intake[k] + drunk * water_to_intake[k]
-        ambient[b, k] = neutral[k] + air * air_to_ambient[k]
-        forcing[b, k] = sunlight * sun_to_forcing[k]
-    engine[ACTIVITY][b] = constants[_ACTIVITY_PER_ACTION][action]
-    engine[TASK][b] = 0.0
-    eaten_event[b], drunk_event[b], bumped_event[b] = eaten, drunk, bumped
-    sun_event[b], air_event[b], time_event[b] = sunlight, air, hour / day_length
-    clock[b] += 1
-
-
-@njit(cache=True)
-def observe_garden(b, constants, terrain, stock, position, clock, engine):
-    """Copy ``b``'s observation: deviations, then position, time of day and the view.
+def observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine, day_cosine,
+                   full_view, radius, observation, at):
+    """Copy ``b``'s world features from column ``at`` of ``observation``: position,
+    time of day and the view (the deviations before them: ``observe_internal``).
 
     Every feature lies inside its bounds by construction (the agent never leaves
     the interior, stocks never pass the capacity), so nothing is clipped.
     """
-    observe_internal(engine, b)
-    observation = engine[OBSERVATION]
-    at = int(engine[OPTIONS][WORLD_OFFSET])
     rows, columns = terrain.shape[1], terrain.shape[2]
     row, column = position[b, 0], position[b, 1]
-    day_sine = constants[_DAY_SINE]
     hour = clock[b] % day_sine.shape[0]
     observation[b, at] = np.float32(row / (rows - 1))
     observation[b, at + 1] = np.float32(column / (columns - 1))
     observation[b, at + 2] = np.float32(day_sine[hour])
-    observation[b, at + 3] = np.float32(constants[_DAY_COSINE][hour])
-    capacity = constants[_FOOD_CAPACITY]
-    if constants[_FULL_VIEW]:
-        food, water, shade = nearest_sources(b, terrain, stock, position, constants[_BITE])
+    observation[b, at + 3] = np.float32(day_cosine[hour])
+    if full_view:
+        # Food offset and stock, water offset, shade offset.
+        food_cell, water_cell, shade_cell = nearest_sources(b, terrain, stock, position, bite)
         slot = at + 4
-        for kind, cell in enumerate((food, water, shade)):
+        for kind, cell in enumerate((food_cell, water_cell, shade_cell)):
             row_offset, column_offset = offset_to(b, cell, columns, position)
             observation[b, slot] = np.float32(row_offset / (rows - 1))
             observation[b, slot + 1] = np.float32(column_offset / (columns - 1))
             slot += 2
             if kind == FOOD_KIND:
-                held = stock[b, food // columns, food % columns] if food >= 0 else 0.0
+                held = stock[b, cell // columns, cell % columns] if cell >= 0 else 0.0
                 observation[b, slot] = np.float32(held / capacity)
                 slot += 1
     else:
         # Clipping maps cells beyond the grid onto the outer wall, which is what the
         # window should show there. Channels: wall, water, shade, food stock.
-        radius = constants[_VIEW_RADIUS]
         side = 2 * radius + 1
         cells = side * side
         for i in range(side):
@@ -316,32 +280,92 @@ def observe_garden(b, constants, terrain, stock, position, clock, engine):
 
 
 @njit(cache=True)
-def _reset(mask, constants, state, engine):
+def observe_copies(mask, constants, state, engine):
+    """Write the observation of every copy where ``mask`` is true (None: all)."""
+    _, food, climate, _, view = constants
+    capacity, bite, _ = food
+    day_sine, day_cosine = climate[2], climate[3]
+    full_view, radius = view
     terrain, stock, position, clock = state
-    sort_keys = np.empty(terrain.shape[1] * terrain.shape[2])
+    observation = engine[OBSERVATION]
+    at = int(engine[OPTIONS][WORLD_OFFSET])
+    for b in range(position.shape[0]):
+        if mask is None or mask[b]:
+            observe_internal(engine, b)
+            observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine,
+                           day_cosine, full_view, radius, observation, at)
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    garden, food = constants[0], constants[1]
+    terrain, stock, position, clock = state
+    keys, counters = engine[KEYS], engine[COUNTERS]
+    places = garden[3] + garden[4] + garden[5] + 1
+    best_keys, order = np.empty(places), np.empty(places, dtype=np.int64)
     for b in range(mask.shape[0]):
         if mask[b]:
             reset_body(engine, b)
-            lay_out_garden(b, constants, terrain, stock, position, clock, sort_keys,
-                           engine[KEYS], engine[COUNTERS])
-            observe_garden(b, constants, terrain, stock, position, clock, engine)
+            lay_out_garden(b, garden, food[0], terrain, stock, position, clock, best_keys,
+                           order, keys, counters)
+    observe_copies(mask, constants, state, engine)
 
 
 @njit(cache=True)
 def _step(actions, constants, state, events, engine):
+    """Every copy's world step (move, regrow, eat and drink, the air and sun of the
+    hour), then the bodies, then the observations."""
+    _, food, climate, body, _ = constants
+    capacity, bite, regrowth = food
+    open_air, daylight, _, _, exposure = climate
+    (water_per_cell, activity_per_action, food_to_intake, water_to_intake, neutral_ambient,
+     air_to_ambient, sun_to_forcing) = body
     terrain, stock, position, clock = state
+    eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event = events
+    intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
+    activity, task = engine[ACTIVITY], engine[TASK]
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    day_length = open_air.shape[0]
     for b in range(actions.shape[0]):
-        act(b, actions[b], constants, terrain, stock, position, clock, events, engine)
+        action = actions[b]
+        target_row = position[b, 0] + MOVES[action, 0]
+        target_column = position[b, 1] + MOVES[action, 1]
+        bumped = terrain[b, target_row, target_column] == WALL
+        if not bumped:
+            position[b, 0], position[b, 1] = target_row, target_column
+        row, column = position[b, 0], position[b, 1]
+        cell = terrain[b, row, column]
+        # Regrow, then eat: off-bush stock is 0, so "eaten" is 0 there without a test.
+        for r in range(rows):
+            for c in range(columns):
+                grown = min(stock[b, r, c] + regrowth, capacity)
+                stock[b, r, c] = grown if terrain[b, r, c] == FOOD else 0.0
+        eaten = min(stock[b, row, column], bite)
+        stock[b, row, column] -= eaten
+        drunk = water_per_cell[cell]
+        # The body feels the air and sun of the hour at which the step begins.
+        hour = clock[b] % day_length
+        air = open_air[hour] * exposure[cell]
+        sunlight = daylight[hour] * exposure[cell]
+        for k in range(intake.shape[1]):
+            intake[b, k] = eaten * food_to_intake[k] + drunk * water_to_intake[k]
+            ambient[b, k] = neutral_ambient[k] + air * air_to_ambient[k]
+            forcing[b, k] = sunlight * sun_to_forcing[k]
+        activity[b] = activity_per_action[action]
+        task[b] = 0.0
+        eaten_event[b], drunk_event[b], bumped_event[b] = eaten, drunk, bumped
+        sun_event[b], air_event[b], time_event[b] = sunlight, air, hour / day_length
+        clock[b] += 1
     settle_all(engine)
-    for b in range(actions.shape[0]):
-        observe_garden(b, constants, terrain, stock, position, clock, engine)
+    observe_copies(None, constants, state, engine)
 
 
 @njit(cache=True)
 def _observe(constants, state, engine):
-    terrain, stock, position, clock = state
-    for b in range(position.shape[0]):
-        observe_garden(b, constants, terrain, stock, position, clock, engine)
+    # Afresh, as the old engine did: levels written in place from outside (tests,
+    # planners setting ``core.body.level``) reach the deviations seen.
+    refresh(engine)
+    observe_copies(None, constants, state, engine)
 
 
 class ForageWorld(World):
@@ -486,13 +510,14 @@ class ForageWorld(World):
     # --- the kernels' inputs -----------------------------------------------------
 
     def constants(self) -> tuple:
-        return (self.site_rows.astype(np.int64), self.site_columns.astype(np.int64),
-                self.pillar_chance, self.food_patches, self.water_cells, self.palms,
-                self.food_capacity, self.bite, self.regrowth, self.open_air, self.daylight,
-                self.day_sine, self.day_cosine, self.exposure, self.water_per_cell,
-                self.activity_per_action, self.food_to_intake, self.water_to_intake,
-                self.neutral_ambient, self.air_to_ambient, self.sun_to_forcing,
-                self.view == "full", self.view_radius)
+        garden = (self.site_rows.astype(np.int64), self.site_columns.astype(np.int64),
+                  self.pillar_chance, self.food_patches, self.water_cells, self.palms)
+        food = (self.food_capacity, self.bite, self.regrowth)
+        climate = (self.open_air, self.daylight, self.day_sine, self.day_cosine, self.exposure)
+        body = (self.water_per_cell, self.activity_per_action, self.food_to_intake,
+                self.water_to_intake, self.neutral_ambient, self.air_to_ambient,
+                self.sun_to_forcing)
+        return garden, food, climate, body, (self.view == "full", self.view_radius)
 
     def allocate(self, batch: int) -> dict[str, np.ndarray]:
         shape = (batch, self.rows, self.columns)
