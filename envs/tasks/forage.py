@@ -689,7 +689,8 @@ class ForageEnv(NeedEnv):
     ``view``: ``"full"`` (this summary) or ``"local"`` (a window, see
     :class:`ForageWideEnv`), ``view_radius``. And the common task arguments
     (``needbench.envs.task``). The world (``env.unwrapped.core.world``) offers
-    ``nearest_source(state, need)`` and ``sources(state)`` for controllers.
+    ``nearest_source(state, need)``, ``sources(state)`` and ``position(state)``
+    for controllers.
 
     ## Vectorized environment
     ``gymnasium.make_vec("needbench/Forage-v0", num_envs=N,
