@@ -90,14 +90,22 @@ def grid_shape(size: Any) -> tuple[int, int]:
 
 
 # --- the compiled kernels ---------------------------------------------------------------
-# The constants tuple (ForageWorld.constants) holds five groups:
-#   garden: (site_rows, site_columns, pillar_chance, food_patches, water_cells, palms)
-#   food: (food_capacity, bite, regrowth)
-#   climate: (open_air, daylight, day_sine, day_cosine, exposure), tables by hour or cell
-#   body: (water_per_cell, activity_per_action, food_to_intake, water_to_intake,
-#          neutral_ambient, air_to_ambient, sun_to_forcing), into the body's units
-#   view: (full_view, view_radius)
+# The constants tuple (ForageWorld.constants) is seven arrays, few so that a call
+# unboxes little (its cost dominates a single env's step):
+#   sites (2, S) int64: rows and columns of the pillar sites;
+#   counts int64: food_patches, water_cells, palms, full view (1) or local (0), view_radius;
+#   numbers float64: pillar_chance, food_capacity, bite, regrowth;
+#   by_hour (4, day_length): open air, daylight, sine and cosine of the day;
+#   by_cell (2, 5): exposure to air and sun, water drunk, by cell type;
+#   by_action (5,): activity of each action;
+#   by_need (5, K): food to intake, water to intake, neutral ambient, air to ambient,
+#     sun to forcing, into each need's units.
 # The kernels unpack them once per call and pass plain arrays and numbers per copy.
+FOOD_PATCHES, WATER_CELLS, PALMS, FULL_VIEW, VIEW_RADIUS = range(5)
+PILLAR_CHANCE, FOOD_CAPACITY, BITE, REGROWTH = range(4)
+OPEN_AIR, DAYLIGHT, DAY_SINE, DAY_COSINE = range(4)
+EXPOSURE, WATER_DRUNK = range(2)
+FOOD_TO_INTAKE, WATER_TO_INTAKE, NEUTRAL_AMBIENT, AIR_TO_AMBIENT, SUN_TO_FORCING = range(5)
 #: Kinds of source in the order of the nearest-source search (and of the full view).
 FOOD_KIND, WATER_KIND, SHADE_KIND = 0, 1, 2
 SOURCE_KIND = {"energy": FOOD_KIND, "water": WATER_KIND, "temperature": SHADE_KIND}
@@ -182,8 +190,8 @@ def _by_hour(clock, table, out):
 
 
 @njit(cache=True)
-def lay_out_garden(b, garden, capacity, terrain, stock, position, clock, best_keys, order,
-                   keys, counters):
+def lay_out_garden(b, sites, counts, pillar_chance, capacity, terrain, stock, position, clock,
+                   best_keys, order, keys, counters):
     """A fresh garden for copy ``b`` from its stream: the outer wall, pillars (one
     uniform per lattice site), a random order of the free cells (one uniform per
     cell, row-major; walls sorted last) whose first places take food, water, palms
@@ -194,7 +202,8 @@ def lay_out_garden(b, garden, capacity, terrain, stock, position, clock, best_ke
     of the free cells is unique. ``best_keys`` and ``order`` are work arrays of
     the first ``food_patches + water_cells + palms + 1`` places.
     """
-    site_rows, site_columns, pillar_chance, n_food, n_water, n_palms = garden
+    site_rows, site_columns = sites[0], sites[1]
+    n_food, n_water, n_palms = counts[FOOD_PATCHES], counts[WATER_CELLS], counts[PALMS]
     rows, columns = terrain.shape[1], terrain.shape[2]
     for r in range(rows):
         for c in range(columns):
@@ -282,10 +291,10 @@ def observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine,
 @njit(cache=True)
 def observe_copies(mask, constants, state, engine):
     """Write the observation of every copy where ``mask`` is true (None: all)."""
-    _, food, climate, _, view = constants
-    capacity, bite, _ = food
-    day_sine, day_cosine = climate[2], climate[3]
-    full_view, radius = view
+    counts, numbers, by_hour = constants[1], constants[2], constants[3]
+    capacity, bite = numbers[FOOD_CAPACITY], numbers[BITE]
+    day_sine, day_cosine = by_hour[DAY_SINE], by_hour[DAY_COSINE]
+    full_view, radius = counts[FULL_VIEW] != 0, counts[VIEW_RADIUS]
     terrain, stock, position, clock = state
     observation = engine[OBSERVATION]
     at = int(engine[OPTIONS][WORLD_OFFSET])
@@ -298,16 +307,16 @@ def observe_copies(mask, constants, state, engine):
 
 @njit(cache=True)
 def _reset(mask, constants, state, engine):
-    garden, food = constants[0], constants[1]
+    sites, counts, numbers = constants[0], constants[1], constants[2]
     terrain, stock, position, clock = state
     keys, counters = engine[KEYS], engine[COUNTERS]
-    places = garden[3] + garden[4] + garden[5] + 1
+    places = counts[FOOD_PATCHES] + counts[WATER_CELLS] + counts[PALMS] + 1
     best_keys, order = np.empty(places), np.empty(places, dtype=np.int64)
     for b in range(mask.shape[0]):
         if mask[b]:
             reset_body(engine, b)
-            lay_out_garden(b, garden, food[0], terrain, stock, position, clock, best_keys,
-                           order, keys, counters)
+            lay_out_garden(b, sites, counts, numbers[PILLAR_CHANCE], numbers[FOOD_CAPACITY],
+                           terrain, stock, position, clock, best_keys, order, keys, counters)
     observe_copies(mask, constants, state, engine)
 
 
@@ -315,11 +324,13 @@ def _reset(mask, constants, state, engine):
 def _step(actions, constants, state, events, engine):
     """Every copy's world step (move, regrow, eat and drink, the air and sun of the
     hour), then the bodies, then the observations."""
-    _, food, climate, body, _ = constants
-    capacity, bite, regrowth = food
-    open_air, daylight, _, _, exposure = climate
-    (water_per_cell, activity_per_action, food_to_intake, water_to_intake, neutral_ambient,
-     air_to_ambient, sun_to_forcing) = body
+    _, _, numbers, by_hour, by_cell, activity_per_action, by_need = constants
+    capacity, bite, regrowth = numbers[FOOD_CAPACITY], numbers[BITE], numbers[REGROWTH]
+    open_air, daylight = by_hour[OPEN_AIR], by_hour[DAYLIGHT]
+    exposure, water_per_cell = by_cell[EXPOSURE], by_cell[WATER_DRUNK]
+    food_to_intake, water_to_intake = by_need[FOOD_TO_INTAKE], by_need[WATER_TO_INTAKE]
+    neutral_ambient, air_to_ambient = by_need[NEUTRAL_AMBIENT], by_need[AIR_TO_AMBIENT]
+    sun_to_forcing = by_need[SUN_TO_FORCING]
     terrain, stock, position, clock = state
     eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event = events
     intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
@@ -510,14 +521,15 @@ class ForageWorld(World):
     # --- the kernels' inputs -----------------------------------------------------
 
     def constants(self) -> tuple:
-        garden = (self.site_rows.astype(np.int64), self.site_columns.astype(np.int64),
-                  self.pillar_chance, self.food_patches, self.water_cells, self.palms)
-        food = (self.food_capacity, self.bite, self.regrowth)
-        climate = (self.open_air, self.daylight, self.day_sine, self.day_cosine, self.exposure)
-        body = (self.water_per_cell, self.activity_per_action, self.food_to_intake,
-                self.water_to_intake, self.neutral_ambient, self.air_to_ambient,
-                self.sun_to_forcing)
-        return garden, food, climate, body, (self.view == "full", self.view_radius)
+        sites = np.stack([self.site_rows, self.site_columns]).astype(np.int64)
+        counts = np.array([self.food_patches, self.water_cells, self.palms,
+                           self.view == "full", self.view_radius], dtype=np.int64)
+        numbers = np.array([self.pillar_chance, self.food_capacity, self.bite, self.regrowth])
+        by_hour = np.stack([self.open_air, self.daylight, self.day_sine, self.day_cosine])
+        by_cell = np.stack([self.exposure, self.water_per_cell])
+        by_need = np.stack([self.food_to_intake, self.water_to_intake, self.neutral_ambient,
+                            self.air_to_ambient, self.sun_to_forcing])
+        return sites, counts, numbers, by_hour, by_cell, self.activity_per_action, by_need
 
     def allocate(self, batch: int) -> dict[str, np.ndarray]:
         shape = (batch, self.rows, self.columns)
