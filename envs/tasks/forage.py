@@ -91,7 +91,7 @@ def grid_shape(size: Any) -> tuple[int, int]:
 
 # --- the compiled kernels ---------------------------------------------------------------
 # The constants tuple (ForageWorld.constants) is seven arrays, few so that a call
-# unboxes little (its cost dominates a single env's step):
+# unboxes little (nested tuples of twenty cost about 3 us a call on a single env):
 #   sites (2, S) int64: rows and columns of the pillar sites;
 #   counts int64: food_patches, water_cells, palms, full view (1) or local (0), view_radius;
 #   numbers float64: pillar_chance, food_capacity, bite, regrowth;
