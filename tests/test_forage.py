@@ -296,6 +296,52 @@ def test_nearest_source_and_sources_agree_with_brute_force():
     assert np.allclose(features[:, 9:11] * 8, world.nearest_source(state, "temperature"))
 
 
+def test_position_is_the_agent_cell_and_a_copy():
+    vector = ForageVectorEnv(num_envs=3)
+    vector.reset(seed=50)
+    world, state = vector.core.world, vector.core.state
+    position = world.position(state)
+    assert position.shape == (3, 2) and position.dtype == np.int64
+    assert np.array_equal(position, state["position"])
+    position[:] = 0  # a copy: the world is untouched
+    assert np.all(state["position"] >= 1)
+
+
+def test_nearest_source_breaks_ties_in_row_major_order_and_falls_back_to_bare_bushes():
+    vector = ForageVectorEnv(num_envs=1, palms=0, pillar_chance=0.0)
+    vector.reset(seed=51)
+    world, state = vector.core.world, vector.core.state
+    terrain = state["terrain"][0]
+    terrain[1:-1, 1:-1] = SAND
+    # Two springs two steps from (4, 4): north-west (row 3) comes before south-east.
+    terrain[3, 3] = terrain[5, 5] = WATER
+    terrain[2, 6] = terrain[6, 2] = FOOD
+    state["position"][0] = (4, 4)
+    state["stock"][0] = np.where(terrain == FOOD, 2.0, 0.0)
+    assert tuple(world.nearest_source(state, "water")[0]) == (-1, -1)
+    assert tuple(world.nearest_source(state, "temperature")[0]) == (0, 0)  # no shade at all
+    # Both bushes four steps away: the first in row-major order, (2, 6).
+    assert tuple(world.nearest_source(state, "energy")[0]) == (-2, 2)
+    state["stock"][0, 2, 6] = 0.2  # less than a bite: the other bush serves
+    assert tuple(world.nearest_source(state, "energy")[0]) == (2, -2)
+    assert np.array_equal(np.argwhere(world.source_mask(state, "energy")[0]), [[6, 2]])
+    state["stock"][0, 6, 2] = 0.0  # none ready: every bush counts again
+    assert tuple(world.nearest_source(state, "energy")[0]) == (-2, 2)
+    assert np.array_equal(world.sources(state)["energy"][0], [[2, 6], [6, 2]])
+
+
+def test_phase_and_air_temperature_follow_the_sinusoidal_day():
+    env = make(day_length=40, air_day=2.0, air_night=-4.0)
+    world = env.unwrapped.core.world
+    clock = np.array([0, 10, 20, 30, 47, 80])
+    # Common practice, no source: the day's angle 2 pi (t mod L) / L, warmest at noon.
+    angle = 2 * np.pi * (clock % 40) / 40
+    assert np.allclose(world.phase(clock), angle, atol=1e-12)
+    assert np.allclose(world.air_temperature(clock), -1.0 + 3.0 * np.sin(angle), atol=1e-12)
+    assert world.air_temperature(10) == pytest.approx(2.0)
+    assert world.air_temperature(30) == pytest.approx(-4.0)
+
+
 def test_local_window_shows_the_padded_map_around_the_agent():
     vector = ForageWideVectorEnv(num_envs=4)
     vector.reset(seed=40)

@@ -25,7 +25,24 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
+from numba import njit
 
+from needbench.envs.engine import (
+    ACTIVITY,
+    AMBIENT,
+    COUNTERS,
+    FORCING,
+    INTAKE,
+    KEYS,
+    OBSERVATION,
+    OPTIONS,
+    TASK,
+    WORLD_OFFSET,
+    observe_internal,
+    refresh,
+    reset_body,
+    settle_all,
+)
 from needbench.envs.errors import (
     ConfigError,
     check_choice,
@@ -34,9 +51,9 @@ from needbench.envs.errors import (
     check_positive,
     check_range,
 )
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.streams import CopyStreams
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+from needbench.envs.physiology import Physiology
+from needbench.envs.streams import draw_uniform
+from needbench.envs.task import NeedEnv, NeedVectorEnv, World
 
 #: Cell types. Open cells (everything but shade and wall) take the sun.
 SAND, SHADE, WALL, WATER, FOOD = 0, 1, 2, 3, 4
@@ -47,20 +64,12 @@ MOVES = np.array([[0, 0], [-1, 0], [0, 1], [1, 0], [0, -1]], dtype=np.int64)
 #: The cell type that serves each need. Shade serves temperature both ways: its
 #: air is neutral, so it cools a hot body by day and warms a cold one at night.
 SOURCE_CELLS = {"energy": FOOD, "water": WATER, "temperature": SHADE}
-#: Cell types of the three sources in the full view's order: food, water, shade.
-SOURCE_KINDS = np.array([FOOD, WATER, SHADE], dtype=np.int8)[:, None, None]
-#: Columns of the full view's world features holding the row and column offsets.
-FULL_ROW_OFFSETS = [4, 7, 9]
-FULL_COLUMN_OFFSETS = [5, 8, 10]
-#: Local-view channels (wall, water, shade) of each cell type.
-WINDOW_CHANNELS = np.array([[0, 0, 0], [0, 0, 1], [1, 0, 0], [0, 1, 0], [0, 0, 0]],
-                           dtype=np.float64)
 #: Characters of the text frame, by cell type (food: see ``ForageWorld.text``).
 CELL_CHARACTERS = (".", ":", "#", "~", "F")
 #: Side of one cell in the picture, pixels.
 CELL_PIXELS = 8
 
-_FAR = 1 << 30  # distance given to cells that are not sources
+_NONE = 1 << 62  # the search key of "no source found yet", above every real key
 
 
 def check_whole(path: str, value: Any, low: int, high: int) -> int:
@@ -80,8 +89,298 @@ def grid_shape(size: Any) -> tuple[int, int]:
     return (check_whole("size", size[0], 5, 99), check_whole("size", size[1], 5, 99))
 
 
+# --- the compiled kernels ---------------------------------------------------------------
+# The constants tuple (ForageWorld.constants) is seven arrays, few so that a call
+# unboxes little (nested tuples of twenty cost about 3 us a call on a single env):
+#   sites (2, S) int64: rows and columns of the pillar sites;
+#   counts int64: food_patches, water_cells, palms, full view (1) or local (0), view_radius;
+#   numbers float64: pillar_chance, food_capacity, bite, regrowth;
+#   by_hour (4, day_length): open air, daylight, sine and cosine of the day;
+#   by_cell (2, 5): exposure to air and sun, water drunk, by cell type;
+#   by_action (5,): activity of each action;
+#   by_need (5, K): food to intake, water to intake, neutral ambient, air to ambient,
+#     sun to forcing, into each need's units.
+# The kernels unpack them once per call and pass plain arrays and numbers per copy.
+FOOD_PATCHES, WATER_CELLS, PALMS, FULL_VIEW, VIEW_RADIUS = range(5)
+PILLAR_CHANCE, FOOD_CAPACITY, BITE, REGROWTH = range(4)
+OPEN_AIR, DAYLIGHT, DAY_SINE, DAY_COSINE = range(4)
+EXPOSURE, WATER_DRUNK = range(2)
+FOOD_TO_INTAKE, WATER_TO_INTAKE, NEUTRAL_AMBIENT, AIR_TO_AMBIENT, SUN_TO_FORCING = range(5)
+#: Kinds of source in the order of the nearest-source search (and of the full view).
+FOOD_KIND, WATER_KIND, SHADE_KIND = 0, 1, 2
+SOURCE_KIND = {"energy": FOOD_KIND, "water": WATER_KIND, "temperature": SHADE_KIND}
+
+
+@njit(cache=True)
+def holds_a_bite(stock, bite):
+    """Whether a bush holding ``stock`` offers one full bite (a 1e-12 tolerance)."""
+    return stock >= bite - 1e-12
+
+
+@njit(cache=True)
+def nearest_sources(b, terrain, stock, position, bite):
+    """Flat cell indices of copy ``b``'s nearest food, water and shade (-1: none).
+
+    One scan of the grid finds all three by Manhattan distance from the agent,
+    ties to the first cell in row-major order: each kind keeps the least key
+    distance * cells + flat index, which orders by distance, then by index.
+    Food counts only bushes holding a full bite, unless none does (then every bush).
+    """
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    row, column = position[b, 0], position[b, 1]
+    cells = rows * columns
+    ready = food = water = shade = _NONE
+    for r in range(rows):
+        row_distance = abs(r - row)
+        for c in range(columns):
+            cell = terrain[b, r, c]
+            key = (row_distance + abs(c - column)) * cells + r * columns + c
+            # Selects, not branches: the cell types are unpredictable to a branch.
+            food = min(food, key if cell == FOOD else _NONE)
+            ready = min(ready, key if cell == FOOD and holds_a_bite(stock[b, r, c], bite)
+                        else _NONE)
+            water = min(water, key if cell == WATER else _NONE)
+            shade = min(shade, key if cell == SHADE else _NONE)
+    if ready < _NONE:
+        food = ready
+    return (food % cells if food < _NONE else -1, water % cells if water < _NONE else -1,
+            shade % cells if shade < _NONE else -1)
+
+
+@njit(cache=True)
+def offset_to(b, cell, columns, position):
+    """(rows, columns) offset from copy ``b``'s agent to flat ``cell``; (0, 0) for -1."""
+    if cell < 0:
+        return 0, 0
+    return cell // columns - position[b, 0], cell % columns - position[b, 1]
+
+
+@njit(cache=True)
+def _nearest_offsets(terrain, stock, position, bite, kind, out):
+    """``out`` (B, 2): each copy's offset to its nearest source of ``kind``."""
+    columns = terrain.shape[2]
+    for b in range(position.shape[0]):
+        cell = nearest_sources(b, terrain, stock, position, bite)[kind]
+        out[b, 0], out[b, 1] = offset_to(b, cell, columns, position)
+
+
+@njit(cache=True)
+def _source_masks(terrain, stock, cell_type, bite, out):
+    """``out`` (B, H, W): the cells of ``cell_type`` that serve now (food: ready bushes,
+    or every bush in a copy where none is ready)."""
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    for b in range(terrain.shape[0]):
+        any_ready = False
+        if cell_type == FOOD:
+            for r in range(rows):
+                for c in range(columns):
+                    if terrain[b, r, c] == FOOD and holds_a_bite(stock[b, r, c], bite):
+                        any_ready = True
+        for r in range(rows):
+            for c in range(columns):
+                out[b, r, c] = terrain[b, r, c] == cell_type and (
+                    not any_ready or holds_a_bite(stock[b, r, c], bite))
+
+
+@njit(cache=True)
+def _by_hour(clock, table, out):
+    """``out[i] = table[clock[i] mod day_length]``: the kernels' lookup of the hour."""
+    for i in range(clock.shape[0]):
+        out[i] = table[clock[i] % table.shape[0]]
+
+
+@njit(cache=True)
+def lay_out_garden(b, sites, counts, pillar_chance, capacity, terrain, stock, position, clock,
+                   best_keys, order, keys, counters):
+    """A fresh garden for copy ``b`` from its stream: the outer wall, pillars (one
+    uniform per lattice site), a random order of the free cells (one uniform per
+    cell, row-major; walls sorted last) whose first places take food, water, palms
+    and the start cell; palm shade on the palm and its four neighbours; full bushes.
+
+    The order is numpy's ``argsort`` of the keys with the walls' keys set to 2, as
+    the layout was first defined; keys are distinct almost surely, so the order
+    of the free cells is unique. ``best_keys`` and ``order`` are work arrays of
+    the first ``food_patches + water_cells + palms + 1`` places.
+    """
+    site_rows, site_columns = sites[0], sites[1]
+    n_food, n_water, n_palms = counts[FOOD_PATCHES], counts[WATER_CELLS], counts[PALMS]
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    for r in range(rows):
+        for c in range(columns):
+            edge = r == 0 or r == rows - 1 or c == 0 or c == columns - 1
+            terrain[b, r, c] = WALL if edge else SAND
+    for j in range(site_rows.shape[0]):
+        pillar = draw_uniform(keys, counters, b) < pillar_chance
+        terrain[b, site_rows[j], site_columns[j]] = WALL if pillar else SAND
+    # The cells with the smallest keys, in order: an insertion into the first
+    # ``places`` slots as the keys are drawn (walls take key 2 and never enter).
+    places = n_food + n_water + n_palms + 1
+    for j in range(places):
+        best_keys[j] = 1.0  # above every uniform draw
+    for r in range(rows):
+        for c in range(columns):
+            u = draw_uniform(keys, counters, b)
+            if terrain[b, r, c] == WALL or not u < best_keys[places - 1]:
+                continue
+            j = places - 1
+            while j > 0 and best_keys[j - 1] > u:
+                best_keys[j], order[j] = best_keys[j - 1], order[j - 1]
+                j -= 1
+            best_keys[j], order[j] = u, r * columns + c
+    for j in range(n_food + n_water):
+        terrain[b, order[j] // columns, order[j] % columns] = FOOD if j < n_food else WATER
+    for j in range(n_food + n_water, n_food + n_water + n_palms):
+        r, c = order[j] // columns, order[j] % columns  # palms stand inside the wall
+        for rr, cc in ((r, c), (r - 1, c), (r + 1, c), (r, c - 1), (r, c + 1)):
+            if terrain[b, rr, cc] == SAND:
+                terrain[b, rr, cc] = SHADE
+    start = order[n_food + n_water + n_palms]
+    position[b, 0], position[b, 1] = start // columns, start % columns
+    for r in range(rows):
+        for c in range(columns):
+            stock[b, r, c] = capacity if terrain[b, r, c] == FOOD else 0.0
+    clock[b] = 0
+
+
+@njit(cache=True)
+def observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine, day_cosine,
+                   full_view, radius, observation, at):
+    """Copy ``b``'s world features from column ``at`` of ``observation``: position,
+    time of day and the view (the deviations before them: ``observe_internal``).
+
+    Every feature lies inside its bounds by construction (the agent never leaves
+    the interior, stocks never pass the capacity), so nothing is clipped.
+    """
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    row, column = position[b, 0], position[b, 1]
+    hour = clock[b] % day_sine.shape[0]
+    observation[b, at] = np.float32(row / (rows - 1))
+    observation[b, at + 1] = np.float32(column / (columns - 1))
+    observation[b, at + 2] = np.float32(day_sine[hour])
+    observation[b, at + 3] = np.float32(day_cosine[hour])
+    if full_view:
+        # Food offset and stock, water offset, shade offset.
+        food_cell, water_cell, shade_cell = nearest_sources(b, terrain, stock, position, bite)
+        slot = at + 4
+        for kind, cell in enumerate((food_cell, water_cell, shade_cell)):
+            row_offset, column_offset = offset_to(b, cell, columns, position)
+            observation[b, slot] = np.float32(row_offset / (rows - 1))
+            observation[b, slot + 1] = np.float32(column_offset / (columns - 1))
+            slot += 2
+            if kind == FOOD_KIND:
+                held = stock[b, cell // columns, cell % columns] if cell >= 0 else 0.0
+                observation[b, slot] = np.float32(held / capacity)
+                slot += 1
+    else:
+        # Clipping maps cells beyond the grid onto the outer wall, which is what the
+        # window should show there. Channels: wall, water, shade, food stock.
+        side = 2 * radius + 1
+        cells = side * side
+        for i in range(side):
+            r = min(max(row - radius + i, 0), rows - 1)
+            for j in range(side):
+                c = min(max(column - radius + j, 0), columns - 1)
+                cell = terrain[b, r, c]
+                slot = at + 4 + i * side + j
+                observation[b, slot] = np.float32(cell == WALL)
+                observation[b, slot + cells] = np.float32(cell == WATER)
+                observation[b, slot + 2 * cells] = np.float32(cell == SHADE)
+                observation[b, slot + 3 * cells] = np.float32(stock[b, r, c] / capacity)
+
+
+@njit(cache=True)
+def observe_copies(mask, constants, state, engine):
+    """Write the observation of every copy where ``mask`` is true (None: all)."""
+    counts, numbers, by_hour = constants[1], constants[2], constants[3]
+    capacity, bite = numbers[FOOD_CAPACITY], numbers[BITE]
+    day_sine, day_cosine = by_hour[DAY_SINE], by_hour[DAY_COSINE]
+    full_view, radius = counts[FULL_VIEW] != 0, counts[VIEW_RADIUS]
+    terrain, stock, position, clock = state
+    observation = engine[OBSERVATION]
+    at = int(engine[OPTIONS][WORLD_OFFSET])
+    for b in range(position.shape[0]):
+        if mask is None or mask[b]:
+            observe_internal(engine, b)
+            observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine,
+                           day_cosine, full_view, radius, observation, at)
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    sites, counts, numbers = constants[0], constants[1], constants[2]
+    terrain, stock, position, clock = state
+    keys, counters = engine[KEYS], engine[COUNTERS]
+    places = counts[FOOD_PATCHES] + counts[WATER_CELLS] + counts[PALMS] + 1
+    best_keys, order = np.empty(places), np.empty(places, dtype=np.int64)
+    for b in range(mask.shape[0]):
+        if mask[b]:
+            reset_body(engine, b)
+            lay_out_garden(b, sites, counts, numbers[PILLAR_CHANCE], numbers[FOOD_CAPACITY],
+                           terrain, stock, position, clock, best_keys, order, keys, counters)
+    observe_copies(mask, constants, state, engine)
+
+
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    """Every copy's world step (move, regrow, eat and drink, the air and sun of the
+    hour), then the bodies, then the observations."""
+    _, _, numbers, by_hour, by_cell, activity_per_action, by_need = constants
+    capacity, bite, regrowth = numbers[FOOD_CAPACITY], numbers[BITE], numbers[REGROWTH]
+    open_air, daylight = by_hour[OPEN_AIR], by_hour[DAYLIGHT]
+    exposure, water_per_cell = by_cell[EXPOSURE], by_cell[WATER_DRUNK]
+    food_to_intake, water_to_intake = by_need[FOOD_TO_INTAKE], by_need[WATER_TO_INTAKE]
+    neutral_ambient, air_to_ambient = by_need[NEUTRAL_AMBIENT], by_need[AIR_TO_AMBIENT]
+    sun_to_forcing = by_need[SUN_TO_FORCING]
+    terrain, stock, position, clock = state
+    eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event = events
+    intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
+    activity, task = engine[ACTIVITY], engine[TASK]
+    rows, columns = terrain.shape[1], terrain.shape[2]
+    day_length = open_air.shape[0]
+    for b in range(actions.shape[0]):
+        action = actions[b]
+        target_row = position[b, 0] + MOVES[action, 0]
+        target_column = position[b, 1] + MOVES[action, 1]
+        bumped = terrain[b, target_row, target_column] == WALL
+        if not bumped:
+            position[b, 0], position[b, 1] = target_row, target_column
+        row, column = position[b, 0], position[b, 1]
+        cell = terrain[b, row, column]
+        # Regrow, then eat: off-bush stock is 0, so "eaten" is 0 there without a test.
+        for r in range(rows):
+            for c in range(columns):
+                grown = min(stock[b, r, c] + regrowth, capacity)
+                stock[b, r, c] = grown if terrain[b, r, c] == FOOD else 0.0
+        eaten = min(stock[b, row, column], bite)
+        stock[b, row, column] -= eaten
+        drunk = water_per_cell[cell]
+        # The body feels the air and sun of the hour at which the step begins.
+        hour = clock[b] % day_length
+        air = open_air[hour] * exposure[cell]
+        sunlight = daylight[hour] * exposure[cell]
+        for k in range(intake.shape[1]):
+            intake[b, k] = eaten * food_to_intake[k] + drunk * water_to_intake[k]
+            ambient[b, k] = neutral_ambient[k] + air * air_to_ambient[k]
+            forcing[b, k] = sunlight * sun_to_forcing[k]
+        activity[b] = activity_per_action[action]
+        task[b] = 0.0
+        eaten_event[b], drunk_event[b], bumped_event[b] = eaten, drunk, bumped
+        sun_event[b], air_event[b], time_event[b] = sunlight, air, hour / day_length
+        clock[b] += 1
+    settle_all(engine)
+    observe_copies(None, constants, state, engine)
+
+
+@njit(cache=True)
+def _observe(constants, state, engine):
+    # Afresh, as the old engine did: levels written in place from outside (tests,
+    # planners setting ``core.body.level``) reach the deviations seen.
+    refresh(engine)
+    observe_copies(None, constants, state, engine)
+
+
 class ForageWorld(World):
-    """B walled oasis gardens, moved together with array operations only.
+    """B walled oasis gardens, stepped by compiled kernels copy by copy.
 
     Actions: 0 stay, 1 north, 2 east, 3 south, 4 west. A move into a wall
     leaves the agent where it is (``bumped`` in info) but still costs the
@@ -96,7 +395,8 @@ class ForageWorld(World):
 
     Sources for reactive controllers: :meth:`source_mask`, :meth:`sources`
     and :meth:`nearest_source` (Manhattan distance, ignoring pillars: pillars
-    stand alone, so a detour round one costs at most two steps).
+    stand alone, so a detour round one costs at most two steps); the agent's
+    cell: :meth:`position`. They call the compiled search the observation uses.
 
     No finite outcome model is offered (no ``model()``): the world state holds
     continuous food stocks that regrow, so no small finite table describes it.
@@ -122,6 +422,10 @@ class ForageWorld(World):
         "view_radius": 3,
     }
     spatial = True
+    uses_ambient = True
+    reset_kernel = staticmethod(_reset)
+    step_kernel = staticmethod(_step)
+    observe_kernel = staticmethod(_observe)
 
     def __init__(self, physiology: Physiology, size: Any = 9, food_patches: int = 3,
                  water_cells: int = 2, palms: int = 2, pillar_chance: float = 0.35,
@@ -160,14 +464,6 @@ class ForageWorld(World):
         if wanted > always_free:
             raise ConfigError("size", size, f"a grid whose {always_free} surely free cells hold "
                               f"food_patches + water_cells + palms + 1 start cell = {wanted}")
-        # Manhattan distance tables: row_distance[r] (H,) = |r - rows|, likewise columns.
-        self.row_distance = np.abs(np.arange(rows)[:, None] - np.arange(rows)[None, :])
-        self.column_distance = np.abs(np.arange(columns)[:, None] - np.arange(columns)[None, :])
-        # cell_distance[c] (H * W,) = Manhattan distance from flat cell c to every cell,
-        # one gather per step instead of a broadcast sum.
-        self.cell_distance = (self.row_distance[:, None, :, None]
-                              + self.column_distance[None, :, None, :]).reshape(
-                                  rows * columns, rows * columns).astype(np.int32)
 
         # Per-need conversion vectors (K,): world quantities are in band units of
         # the need they touch; the body wants need units per unit time.
@@ -191,8 +487,8 @@ class ForageWorld(World):
         self.air_swing = 0.5 * (self.air_day - self.air_night)
         # Tables by hour (clock mod day_length) and by cell type keep the hot path to a
         # few lookups instead of trigonometry and comparisons every step.
-        angle = (2.0 * math.pi / self.day_length) * np.arange(self.day_length)
-        self.day_sine, self.day_cosine = np.sin(angle), np.cos(angle)
+        self.day_angle = (2.0 * math.pi / self.day_length) * np.arange(self.day_length)
+        self.day_sine, self.day_cosine = np.sin(self.day_angle), np.cos(self.day_angle)
         self.open_air = self.air_mean + self.air_swing * self.day_sine
         self.daylight = np.maximum(self.day_sine, 0.0)
         self.exposure = np.array([1.0, 0.0, 1.0, 1.0, 1.0])  # by cell type: shade has none
@@ -218,91 +514,62 @@ class ForageWorld(World):
             names = list(head) + [f"window/{channel}/{cell}" for channel in
                                   ("wall", "water", "shade", "food") for cell in window]
             low = head_low + [0.0] * (4 * len(window))
-            self.window_offsets = np.arange(-self.view_radius, self.view_radius + 1)
         self.feature_names = tuple(names)
         self.feature_low = np.array(low)
         self.feature_high = np.ones(len(names))
 
-    # --- layout ---------------------------------------------------------------
+    # --- the kernels' inputs -----------------------------------------------------
 
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
-        rows, columns = self.rows, self.columns
-        terrain = np.full((batch, rows, columns), SAND, dtype=np.int8)
-        terrain[:, 0, :] = terrain[:, -1, :] = WALL
-        terrain[:, :, 0] = terrain[:, :, -1] = WALL
-        pillars = rng.random((batch, self.site_rows.size)) < self.pillar_chance
-        terrain[:, self.site_rows, self.site_columns] = np.where(pillars, WALL, SAND)
-        # A random order of the free cells (walls sorted last); food, water, palms and
-        # the start cell take its first places. Every copy draws H * W numbers.
-        flat = terrain.reshape(batch, -1)
-        keys = rng.random((batch, rows * columns))
-        keys[flat == WALL] = 2.0
-        order = np.argsort(keys, axis=1)
-        copies = np.arange(batch)[:, None]
-        n_food, n_water, n_palms = self.food_patches, self.water_cells, self.palms
-        flat[copies, order[:, :n_food]] = FOOD
-        flat[copies, order[:, n_food:n_food + n_water]] = WATER
-        palm = np.zeros((batch, rows * columns), dtype=bool)
-        palm[copies, order[:, n_food + n_water:n_food + n_water + n_palms]] = True
-        palm = palm.reshape(batch, rows, columns)
-        canopy = palm.copy()  # a palm shades its own cell and its four neighbours
-        canopy[:, 1:, :] |= palm[:, :-1, :]
-        canopy[:, :-1, :] |= palm[:, 1:, :]
-        canopy[:, :, 1:] |= palm[:, :, :-1]
-        canopy[:, :, :-1] |= palm[:, :, 1:]
-        terrain[canopy & (terrain == SAND)] = SHADE
-        start = order[:, n_food + n_water + n_palms]
-        position = np.stack([start // columns, start % columns], axis=1).astype(np.int64)
-        stock = np.where(terrain == FOOD, self.food_capacity, 0.0)
-        return {"terrain": terrain, "stock": stock, "position": position,
+    def constants(self) -> tuple:
+        sites = np.stack([self.site_rows, self.site_columns]).astype(np.int64)
+        counts = np.array([self.food_patches, self.water_cells, self.palms,
+                           self.view == "full", self.view_radius], dtype=np.int64)
+        numbers = np.array([self.pillar_chance, self.food_capacity, self.bite, self.regrowth])
+        by_hour = np.stack([self.open_air, self.daylight, self.day_sine, self.day_cosine])
+        by_cell = np.stack([self.exposure, self.water_per_cell])
+        by_need = np.stack([self.food_to_intake, self.water_to_intake, self.neutral_ambient,
+                            self.air_to_ambient, self.sun_to_forcing])
+        return sites, counts, numbers, by_hour, by_cell, self.activity_per_action, by_need
+
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
+        shape = (batch, self.rows, self.columns)
+        return {"terrain": np.full(shape, WALL, dtype=np.int8), "stock": np.zeros(shape),
+                "position": np.ones((batch, 2), dtype=np.int64),
                 "clock": np.zeros(batch, dtype=np.int64)}
+
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {"eaten": np.zeros(batch), "drunk": np.zeros(batch),
+                "bumped": np.zeros(batch, dtype=np.bool_), "sunlight": np.zeros(batch),
+                "air_temperature": np.zeros(batch), "time_of_day": np.zeros(batch)}
 
     # --- time of day ----------------------------------------------------------
 
+    def _by_hour(self, clock, table: np.ndarray):
+        clock = np.asarray(clock, dtype=np.int64)
+        out = np.empty(clock.size)
+        _by_hour(clock.reshape(-1), table, out)
+        return out.reshape(clock.shape)[()]
+
     def phase(self, clock: np.ndarray) -> np.ndarray:
         """Angle of the day, radians: 0 at dawn, pi/2 at noon, 3 pi/2 at midnight."""
-        return (2.0 * math.pi / self.day_length) * (clock % self.day_length)
+        return self._by_hour(clock, self.day_angle)
 
     def air_temperature(self, clock: np.ndarray) -> np.ndarray:
         """Open-air temperature, band units of temperature above the neutral ambient:
         ``air_mean + air_swing * sin(phase)``, peaking at ``air_day`` at noon and
-        falling to ``air_night`` at midnight."""
-        return self.air_mean + self.air_swing * np.sin(self.phase(clock))
+        falling to ``air_night`` at midnight (the table the step reads)."""
+        return self._by_hour(clock, self.open_air)
 
-    # --- dynamics -------------------------------------------------------------
+    # --- the agent and the sources ------------------------------------------------
 
-    def step(self, state, actions, body: BodyState, rng: CopyStreams):
-        terrain, position, clock = state["terrain"], state["position"], state["clock"]
-        copies = np.arange(position.shape[0])
-        target = position + MOVES[actions]
-        bumped = terrain[copies, target[:, 0], target[:, 1]] == WALL
-        position = np.where(bumped[:, None], position, target)
-        row, column = position[:, 0], position[:, 1]
-        cell = terrain[copies, row, column]
-        # Regrow, then eat: off-bush stock is 0, so "eaten" is 0 there without a test.
-        stock = np.where(terrain == FOOD,
-                         np.minimum(state["stock"] + self.regrowth, self.food_capacity), 0.0)
-        eaten = np.minimum(stock[copies, row, column], self.bite)
-        stock[copies, row, column] -= eaten
-        drunk = self.water_per_cell[cell]
-        # The body feels the air and sun of the hour at which the step begins.
-        hour = clock % self.day_length
-        exposure = self.exposure[cell]
-        air = self.open_air[hour] * exposure
-        sunlight = self.daylight[hour] * exposure
-        effects = Effects(
-            intake=eaten[:, None] * self.food_to_intake + drunk[:, None] * self.water_to_intake,
-            activity=self.activity_per_action[actions],
-            task_reward=np.zeros(position.shape[0]),
-            ambient=self.neutral_ambient + air[:, None] * self.air_to_ambient,
-            forcing=sunlight[:, None] * self.sun_to_forcing,
-            events={"eaten": eaten, "drunk": drunk, "bumped": bumped, "sunlight": sunlight,
-                    "air_temperature": air, "time_of_day": hour / self.day_length},
-        )
-        return {"terrain": terrain, "stock": stock, "position": position,
-                "clock": clock + 1}, effects
+    def position(self, state: dict[str, np.ndarray]) -> np.ndarray:
+        """(B, 2) int64 row and column of each copy's agent (a copy of the state)."""
+        return state["position"].copy()
 
-    # --- sources --------------------------------------------------------------
+    def _check_source(self, need: str) -> None:
+        if need not in SOURCE_CELLS or need not in self.physiology.index:
+            served = [n for n in SOURCE_CELLS if n in self.physiology.index]
+            raise ConfigError("need", need, "a need with sources here: " + ", ".join(served))
 
     def source_mask(self, state: dict[str, np.ndarray], need: str) -> np.ndarray:
         """(B, H, W) bool: the cells that serve ``need`` now.
@@ -311,15 +578,11 @@ class ForageWorld(World):
         copy where none does: the agent should wait by one); ``water``: water
         cells; ``temperature``: shade.
         """
-        if need not in SOURCE_CELLS or need not in self.physiology.index:
-            served = [n for n in SOURCE_CELLS if n in self.physiology.index]
-            raise ConfigError("need", need, "a need with sources here: " + ", ".join(served))
+        self._check_source(need)
         terrain = state["terrain"]
-        mask = terrain == SOURCE_CELLS[need]
-        if need == "energy":
-            ready = mask & (state["stock"] >= self.bite - 1e-12)
-            mask = np.where(ready.any(axis=(1, 2))[:, None, None], ready, mask)
-        return mask
+        out = np.empty(terrain.shape, dtype=np.bool_)
+        _source_masks(terrain, state["stock"], SOURCE_CELLS[need], self.bite, out)
+        return out
 
     def sources(self, state: dict[str, np.ndarray]) -> dict[str, list[np.ndarray]]:
         """Positions of the sources of each need of the body, per copy.
@@ -339,60 +602,14 @@ class ForageWorld(World):
     def nearest_source(self, state: dict[str, np.ndarray], need: str) -> np.ndarray:
         """(B, 2) int64 offset (rows, columns) from the agent to its nearest source
         of ``need`` by Manhattan distance (ties: the first in row-major order);
-        (0, 0) on a source, and also in a copy that has none (e.g. ``palms=0``)."""
-        mask = self.source_mask(state, need)[:, None]
-        if need == "temperature" and self.palms == 0:  # shade exists iff there are palms
-            return np.zeros_like(state["position"])
-        row_offset, column_offset, _ = self._nearest(state["position"], mask)
-        return np.stack([row_offset[:, 0], column_offset[:, 0]], axis=1)
-
-    def _nearest(self, position: np.ndarray, masks: np.ndarray):
-        """Row offsets, column offsets and flat cell indices, each (B, S), of the
-        nearest cell of each of S non-empty masks (B, S, H, W)."""
-        batch, kinds = position.shape[0], masks.shape[1]
-        distance = self.cell_distance[position[:, 0] * self.columns + position[:, 1]]
-        index = np.where(masks.reshape(batch, kinds, -1), distance[:, None, :],
-                         np.int32(_FAR)).argmin(axis=2)
-        return (index // self.columns - position[:, 0, None],
-                index % self.columns - position[:, 1, None], index)
-
-    # --- observation ----------------------------------------------------------
-
-    def observe(self, state):
-        # Every feature lies inside [feature_low, feature_high] by construction (the
-        # agent never leaves the interior, stocks never pass the capacity), so no clip.
-        terrain, stock, position = state["terrain"], state["stock"], state["position"]
-        batch = position.shape[0]
-        hour = state["clock"] % self.day_length
-        features = np.empty((batch, len(self.feature_names)))
-        features[:, 0] = position[:, 0] / (self.rows - 1)
-        features[:, 1] = position[:, 1] / (self.columns - 1)
-        features[:, 2] = self.day_sine[hour]
-        features[:, 3] = self.day_cosine[hour]
-        if self.view == "full":
-            masks = terrain[:, None] == SOURCE_KINDS  # (B, 3, H, W): food, water, shade
-            ready = masks[:, 0] & (stock >= self.bite - 1e-12)
-            masks[:, 0] = np.where(ready.any(axis=(1, 2))[:, None, None], ready, masks[:, 0])
-            row_offset, column_offset, index = self._nearest(position, masks)
-            if self.palms == 0:  # no shade anywhere: report no offset
-                row_offset[:, 2] = column_offset[:, 2] = 0
-            features[:, FULL_ROW_OFFSETS] = row_offset / (self.rows - 1)
-            features[:, FULL_COLUMN_OFFSETS] = column_offset / (self.columns - 1)
-            features[:, 6] = (stock.reshape(batch, -1)[np.arange(batch), index[:, 0]]
-                              / self.food_capacity)
-        else:
-            # Clipping maps cells beyond the grid onto the outer wall, which is what
-            # the window should show there.
-            rows = np.clip(position[:, 0, None] + self.window_offsets, 0, self.rows - 1)
-            columns = np.clip(position[:, 1, None] + self.window_offsets, 0, self.columns - 1)
-            copies = np.arange(batch)[:, None, None]
-            rows, columns = rows[:, :, None], columns[:, None, :]
-            channels = WINDOW_CHANNELS[terrain[copies, rows, columns]]  # (B, S, S, 3)
-            cells = self.window_offsets.size ** 2
-            features[:, 4:4 + 3 * cells] = channels.transpose(0, 3, 1, 2).reshape(batch, -1)
-            features[:, 4 + 3 * cells:] = (stock[copies, rows, columns].reshape(batch, -1)
-                                           / self.food_capacity)
-        return features
+        (0, 0) on a source, and also in a copy that has none (e.g. ``palms=0``).
+        The observation's full view reads the same compiled search."""
+        self._check_source(need)
+        position = state["position"]
+        out = np.empty(position.shape, dtype=np.int64)
+        _nearest_offsets(state["terrain"], state["stock"], position, self.bite,
+                         SOURCE_KIND[need], out)
+        return out
 
     # --- rendering ------------------------------------------------------------
 
@@ -484,7 +701,8 @@ class ForageEnv(NeedEnv):
     ``view``: ``"full"`` (this summary) or ``"local"`` (a window, see
     :class:`ForageWideEnv`), ``view_radius``. And the common task arguments
     (``needbench.envs.task``). The world (``env.unwrapped.core.world``) offers
-    ``nearest_source(state, need)`` and ``sources(state)`` for controllers.
+    ``nearest_source(state, need)``, ``sources(state)`` and ``position(state)``
+    for controllers.
 
     ## Vectorized environment
     ``gymnasium.make_vec("needbench/Forage-v0", num_envs=N,
