@@ -364,7 +364,9 @@ class TaskCore:
         self.world.step_kernel(actions, self._constants, self._state, self._events, self.engine)
 
     def observe(self) -> np.ndarray | dict[str, np.ndarray]:
-        """(B, D) float32 observations (or a dict of them), computed afresh."""
+        """(B, D) float32 observations (or a dict of them), computed afresh: levels and
+        world state written in place from outside (tests, planners) are seen."""
+        refresh(self.engine)
         self.world.observe_kernel(self._constants, self._state, self.engine)
         return self.observation()
 

@@ -25,8 +25,8 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     ACTIVITY,
     AMBIENT,
@@ -39,7 +39,6 @@ from needbench.envs.engine import (
     TASK,
     WORLD_OFFSET,
     observe_internal,
-    refresh,
     reset_body,
     settle_all,
 )
@@ -111,13 +110,13 @@ FOOD_KIND, WATER_KIND, SHADE_KIND = 0, 1, 2
 SOURCE_KIND = {"energy": FOOD_KIND, "water": WATER_KIND, "temperature": SHADE_KIND}
 
 
-@njit(cache=True)
+@inline_kernel
 def holds_a_bite(stock, bite):
     """Whether a bush holding ``stock`` offers one full bite (a 1e-12 tolerance)."""
     return stock >= bite - 1e-12
 
 
-@njit(cache=True)
+@inline_kernel
 def nearest_sources(b, terrain, stock, position, bite):
     """Flat cell indices of copy ``b``'s nearest food, water and shade (-1: none).
 
@@ -147,7 +146,7 @@ def nearest_sources(b, terrain, stock, position, bite):
             shade % cells if shade < _NONE else -1)
 
 
-@njit(cache=True)
+@inline_kernel
 def offset_to(b, cell, columns, position):
     """(rows, columns) offset from copy ``b``'s agent to flat ``cell``; (0, 0) for -1."""
     if cell < 0:
@@ -155,7 +154,7 @@ def offset_to(b, cell, columns, position):
     return cell // columns - position[b, 0], cell % columns - position[b, 1]
 
 
-@njit(cache=True)
+@kernel
 def _nearest_offsets(terrain, stock, position, bite, kind, out):
     """``out`` (B, 2): each copy's offset to its nearest source of ``kind``."""
     columns = terrain.shape[2]
@@ -164,7 +163,7 @@ def _nearest_offsets(terrain, stock, position, bite, kind, out):
         out[b, 0], out[b, 1] = offset_to(b, cell, columns, position)
 
 
-@njit(cache=True)
+@kernel
 def _source_masks(terrain, stock, cell_type, bite, out):
     """``out`` (B, H, W): the cells of ``cell_type`` that serve now (food: ready bushes,
     or every bush in a copy where none is ready)."""
@@ -182,14 +181,14 @@ def _source_masks(terrain, stock, cell_type, bite, out):
                     not any_ready or holds_a_bite(stock[b, r, c], bite))
 
 
-@njit(cache=True)
+@kernel
 def _by_hour(clock, table, out):
     """``out[i] = table[clock[i] mod day_length]``: the kernels' lookup of the hour."""
     for i in range(clock.shape[0]):
         out[i] = table[clock[i] % table.shape[0]]
 
 
-@njit(cache=True)
+@inline_kernel
 def lay_out_garden(b, sites, counts, pillar_chance, capacity, terrain, stock, position, clock,
                    best_keys, order, keys, counters):
     """A fresh garden for copy ``b`` from its stream: the outer wall, pillars (one
@@ -242,7 +241,7 @@ def lay_out_garden(b, sites, counts, pillar_chance, capacity, terrain, stock, po
     clock[b] = 0
 
 
-@njit(cache=True)
+@inline_kernel
 def observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine, day_cosine,
                    full_view, radius, observation, at):
     """Copy ``b``'s world features from column ``at`` of ``observation``: position,
@@ -288,7 +287,7 @@ def observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine,
                 observation[b, slot + 3 * cells] = np.float32(stock[b, r, c] / capacity)
 
 
-@njit(cache=True)
+@kernel
 def observe_copies(mask, constants, state, engine):
     """Write the observation of every copy where ``mask`` is true (None: all)."""
     counts, numbers, by_hour = constants[1], constants[2], constants[3]
@@ -305,13 +304,12 @@ def observe_copies(mask, constants, state, engine):
                            day_cosine, full_view, radius, observation, at)
 
 
-@njit(cache=True)
+@kernel
 def _reset(mask, constants, state, engine):
     sites, counts, numbers = constants[0], constants[1], constants[2]
+    best_keys, order = constants[7], constants[8]
     terrain, stock, position, clock = state
     keys, counters = engine[KEYS], engine[COUNTERS]
-    places = counts[FOOD_PATCHES] + counts[WATER_CELLS] + counts[PALMS] + 1
-    best_keys, order = np.empty(places), np.empty(places, dtype=np.int64)
     for b in range(mask.shape[0]):
         if mask[b]:
             reset_body(engine, b)
@@ -320,11 +318,11 @@ def _reset(mask, constants, state, engine):
     observe_copies(mask, constants, state, engine)
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     """Every copy's world step (move, regrow, eat and drink, the air and sun of the
     hour), then the bodies, then the observations."""
-    _, _, numbers, by_hour, by_cell, activity_per_action, by_need = constants
+    _, _, numbers, by_hour, by_cell, activity_per_action, by_need, _, _ = constants
     capacity, bite, regrowth = numbers[FOOD_CAPACITY], numbers[BITE], numbers[REGROWTH]
     open_air, daylight = by_hour[OPEN_AIR], by_hour[DAYLIGHT]
     exposure, water_per_cell = by_cell[EXPOSURE], by_cell[WATER_DRUNK]
@@ -371,11 +369,8 @@ def _step(actions, constants, state, events, engine):
     observe_copies(None, constants, state, engine)
 
 
-@njit(cache=True)
+@kernel
 def _observe(constants, state, engine):
-    # Afresh, as the old engine did: levels written in place from outside (tests,
-    # planners setting ``core.body.level``) reach the deviations seen.
-    refresh(engine)
     observe_copies(None, constants, state, engine)
 
 
@@ -529,7 +524,10 @@ class ForageWorld(World):
         by_cell = np.stack([self.exposure, self.water_per_cell])
         by_need = np.stack([self.food_to_intake, self.water_to_intake, self.neutral_ambient,
                             self.air_to_ambient, self.sun_to_forcing])
-        return sites, counts, numbers, by_hour, by_cell, self.activity_per_action, by_need
+        # Work arrays of the garden's layout: the first places of the free cells.
+        places = self.food_patches + self.water_cells + self.palms + 1
+        return (sites, counts, numbers, by_hour, by_cell, self.activity_per_action, by_need,
+                np.empty(places), np.empty(places, dtype=np.int64))
 
     def allocate(self, batch: int) -> dict[str, np.ndarray]:
         shape = (batch, self.rows, self.columns)
