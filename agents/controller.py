@@ -36,12 +36,14 @@ env): the first K entries are the deviations (h - h*)/band, so the
 controller **requires interoception** (``interoception=True``, the default;
 ``learn`` raises ConfigError otherwise), and the world features give the
 source offsets. What ``learn`` reads from ``env.unwrapped.core`` is fixed for
-the task, not for an episode: the set points, bands and drive; the outcome
-model; the layout of the world features (``world.feature_names``), the grid
-size and the sites where Forage may put pillars (``world.site_rows`` /
-``site_columns``; pillars are not in the full-view observation, so the
-controller walks round every possible pillar site, unless ``pillar_chance``
-is 0); Arena's source kinds, ``max_speed`` and ``sensing_range``. It
+the task, not for an episode, and only through the world's public face: the
+set points, bands and drive; the outcome model (``world.model()``); which
+features locate the source of each need and what the source does
+(``world.source_guides()``, ``world.feature_index(name)``); Forage's moves
+and the cells where walls may stand (``world.moves()``,
+``world.possible_walls()``; pillars are not in the full-view observation, so
+the controller walks round every possible pillar site, unless pillars cannot
+stand); Arena's ``max_speed`` and ``sensing_range``. It
 assumes fixed set points: under set point adaptation (Drift) it would read
 deviations against the moving set point, but no outcome model exists there,
 so such tasks are refused.
@@ -222,29 +224,17 @@ class GridRule:
 
     @classmethod
     def from_core(cls, core: Any, settings: ControllerHyperparameters) -> GridRule:
-        from needbench.envs import forage
-
         world = core.world
-        names = list(world.feature_names)
         k = core.physiology.num_needs
         direction = np.full(k, RAISES)
         offsets = np.full((k, 2), -1)
-        for need, cell in forage.SOURCE_CELLS.items():
-            if need not in core.physiology.index:
-                continue
+        for need, guide in world.source_guides().items():
             i = core.physiology.index[need]
-            label = forage.CELL_NAMES[cell]
-            offsets[i] = [k + names.index(f"{label}/row_offset"),
-                          k + names.index(f"{label}/column_offset")]
-            # Shade's air is neutral: it cools a hot body and warms a cold one.
-            direction[i] = RESTORES if cell == forage.SHADE else RAISES
-        barred = np.zeros((world.rows, world.columns), dtype=bool)
-        barred[[0, -1], :] = True
-        barred[:, [0, -1]] = True
-        if world.pillar_chance > 0.0:
-            barred[world.site_rows, world.site_columns] = True
-        position = np.array([k + names.index("row"), k + names.index("column")])
-        return cls(settings, k, direction, offsets, position, forage.MOVES, barred)
+            offsets[i] = [k + world.feature_index(name) for name in guide.features[0]]
+            direction[i] = RESTORES if guide.effect == "restores" else RAISES
+        position = np.array([k + world.feature_index("row"), k + world.feature_index("column")])
+        return cls(settings, k, direction, offsets, position, world.moves(),
+                   world.possible_walls())
 
     def act(self, observations: np.ndarray, deviation: np.ndarray) -> np.ndarray:
         copies = np.arange(observations.shape[0])
@@ -324,26 +314,18 @@ class WindowRule:
 
     @classmethod
     def from_core(cls, core: Any, settings: ControllerHyperparameters, seed: int) -> WindowRule:
-        from needbench.envs import forage
-
         world = core.world
-        names = list(world.feature_names)
         k = core.physiology.num_needs
-        span = range(-world.view_radius, world.view_radius + 1)
-        cells = [(dr, dc) for dr in span for dc in span]
-        labels = [f"{dr:+d},{dc:+d}" for dr, dc in cells]
+        cells = world.window_cells()
         direction = np.full(k, RAISES)
         columns = np.full((k, len(cells)), -1)
-        for need, cell in forage.SOURCE_CELLS.items():
-            if need not in core.physiology.index:
-                continue
+        for need, guide in world.source_guides().items():
             i = core.physiology.index[need]
-            channel = forage.CELL_NAMES[cell]
-            columns[i] = [k + names.index(f"window/{channel}/{label}") for label in labels]
-            direction[i] = RESTORES if cell == forage.SHADE else RAISES
-        walls = [k + names.index(f"window/wall/{label}") for label in labels]
+            columns[i] = [k + world.feature_index(name) for name in guide.features[0]]
+            direction[i] = RESTORES if guide.effect == "restores" else RAISES
+        walls = [k + world.feature_index(f"window/wall/{dr:+d},{dc:+d}") for dr, dc in cells]
         return cls(settings, k, direction, columns, np.array(walls), np.array(cells),
-                   forage.MOVES, seed)
+                   world.moves(), seed)
 
     def act(self, observations: np.ndarray, deviation: np.ndarray) -> np.ndarray:
         batch = observations.shape[0]

@@ -90,6 +90,28 @@ from needbench.envs.rewards import RewardChannel
 from needbench.envs.streams import CopyStreams, EpisodeKeys, key_from
 
 
+@dataclass(frozen=True)
+class SourceGuide:
+    """How an agent finds what serves one need: part of a world's public face.
+
+    Attributes:
+        need: the need served.
+        source: what serves it, in the task's words (``food``, ``shade``...).
+        effect: ``"raises"`` (the source adds to the need), ``"lowers"``, or
+            ``"restores"`` (it pulls the need back toward its set point from
+            either side, as shade does for temperature).
+        features: per source instance, the names of the world features that
+            locate it (offsets, vectors or view channels; see the task's docs).
+        radius: per source instance, its reach in the world's units (0 for a cell).
+    """
+
+    need: str
+    source: str
+    effect: str
+    features: tuple[tuple[str, ...], ...]
+    radius: tuple[float, ...] = ()
+
+
 class World:
     """The outside world of a task family, for B copies at once.
 
@@ -149,6 +171,10 @@ class World:
         return {}
 
     def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {}
+
+    def source_guides(self) -> dict[str, SourceGuide]:
+        """{need: SourceGuide} for the needs this world has places to serve (default: none)."""
         return {}
 
     def feature_index(self, name: str) -> int:

@@ -52,7 +52,7 @@ from needbench.envs.errors import (
 )
 from needbench.envs.physiology import Physiology
 from needbench.envs.streams import draw_uniform
-from needbench.envs.task import NeedEnv, NeedVectorEnv, World
+from needbench.envs.task import NeedEnv, NeedVectorEnv, SourceGuide, World
 
 #: Cell types. Open cells (everything but shade and wall) take the sun.
 SAND, SHADE, WALL, WATER, FOOD = 0, 1, 2, 3, 4
@@ -504,8 +504,7 @@ class ForageWorld(World):
                     names.append("food/stock")
                     low.append(0.0)
         else:
-            span = range(-self.view_radius, self.view_radius + 1)
-            window = [f"{dr:+d},{dc:+d}" for dr in span for dc in span]
+            window = [f"{dr:+d},{dc:+d}" for dr, dc in self.window_cells()]
             names = list(head) + [f"window/{channel}/{cell}" for channel in
                                   ("wall", "water", "shade", "food") for cell in window]
             low = head_low + [0.0] * (4 * len(window))
@@ -563,6 +562,44 @@ class ForageWorld(World):
     def position(self, state: dict[str, np.ndarray]) -> np.ndarray:
         """(B, 2) int64 row and column of each copy's agent (a copy of the state)."""
         return state["position"].copy()
+
+    def source_guides(self) -> dict[str, SourceGuide]:
+        """Food raises energy, water raises water, shade restores temperature. Full
+        view: each need's features are the (row, column) offsets to its nearest
+        source; local view: that source's channel over the window, cell by cell in
+        the order of :meth:`window_cells`."""
+        guides = {}
+        for need, cell in SOURCE_CELLS.items():
+            if need not in self.physiology.index:
+                continue
+            name = CELL_NAMES[cell]
+            if self.view == "full":
+                features = ((f"{name}/row_offset", f"{name}/column_offset"),)
+            else:
+                features = (tuple(f"window/{name}/{dr:+d},{dc:+d}"
+                                  for dr, dc in self.window_cells()),)
+            guides[need] = SourceGuide(need, name, "restores" if cell == SHADE else "raises",
+                                       features, (0.0,))
+        return guides
+
+    def moves(self) -> np.ndarray:
+        """(A, 2) int64 (row, column) step of each action (action 0 stays)."""
+        return MOVES.copy()
+
+    def possible_walls(self) -> np.ndarray:
+        """(H, W) bool: cells that are, or may be, walls in some garden (the outer
+        wall and the pillar sites, when pillars can stand)."""
+        barred = np.zeros((self.rows, self.columns), dtype=bool)
+        barred[[0, -1], :] = True
+        barred[:, [0, -1]] = True
+        if self.pillar_chance > 0.0:
+            barred[self.site_rows, self.site_columns] = True
+        return barred
+
+    def window_cells(self) -> list[tuple[int, int]]:
+        """(row, column) offsets of the local view's cells, row by row."""
+        span = range(-self.view_radius, self.view_radius + 1)
+        return [(dr, dc) for dr in span for dc in span]
 
     def _check_source(self, need: str) -> None:
         if need not in SOURCE_CELLS or need not in self.physiology.index:
