@@ -456,7 +456,9 @@ class ArenaEnv(NeedEnv):
     * the common task arguments (``needbench.envs.task``).
 
     For controllers, ``env.unwrapped.core.world.sources(env.unwrapped.core.state)``
-    gives ``{need: (B, count, 2)}`` source centres.
+    gives ``{need: (B, count, 2)}`` source centres, ``world.position(state)`` the
+    (B, 2) agent positions and ``world.richness(position, centres)`` each source's
+    strength there (the step's own computation).
 
     ## Vectorized environment
     ``gymnasium.make_vec("needbench/Arena-v0", num_envs=N,
