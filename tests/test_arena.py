@@ -5,10 +5,11 @@ import math
 import gymnasium as gym
 import numpy as np
 import pytest
+from scipy.spatial.distance import cdist
 
 import needbench.envs  # noqa: F401  (registers the tasks)
-from needbench.envs.tasks.arena import ISLAND_SOURCES, ArenaEnv, ArenaVectorEnv
 from needbench.envs.errors import ConfigError
+from needbench.envs.tasks.arena import ISLAND_SOURCES, ArenaEnv, ArenaVectorEnv
 
 
 def place(env, position, sources=None):
@@ -225,3 +226,42 @@ def test_default_sources_follow_the_chosen_needs():
     obs, _ = env.reset(seed=0)
     assert set(env.unwrapped.core.world.sources(env.unwrapped.core.state)) == {"water"}
     assert obs.shape == (1 + 2 + 2 * ISLAND_SOURCES["water"]["count"],)
+
+
+def test_position_and_richness_are_what_the_step_used():
+    env = ArenaVectorEnv(num_envs=4)
+    env.reset(seed=6)
+    core, world = env.core, env.core.world
+    rng = np.random.default_rng(6)
+    for _ in range(5):
+        _, _, _, _, info = env.step(rng.uniform(-1, 1, (4, 2)).astype(np.float32))
+        position = world.position(core.state)
+        assert position.shape == (4, 2)
+        assert np.array_equal(position, info["position"])
+    # A copy: writing into it leaves the world's state alone.
+    position[:] = -1.0
+    assert np.all(world.position(core.state) >= 0.0)
+    richness = world.richness(world.position(core.state), core.state["sources"])
+    # Source: scipy.spatial.distance.cdist (Euclidean distance) for d in 1 - d/r.
+    distance = np.stack([cdist(world.position(core.state)[b:b + 1], core.state["sources"][b])[0]
+                         for b in range(4)])
+    assert np.allclose(richness, np.clip(1.0 - distance / world.source_radius, 0.0, 1.0),
+                       atol=1e-12)
+    # The intake of a need is its richest source's strength times the rate (band 1).
+    water = world.source_need == core.physiology.index["water"]
+    assert np.allclose(info["intake"][:, core.physiology.index["water"]],
+                       richness[:, water].max(axis=1) * ISLAND_SOURCES["water"]["rate"],
+                       atol=1e-12)
+
+
+def test_richness_takes_one_source_layout_for_many_points():
+    env = ArenaEnv(needs=("water",))
+    env.reset(seed=0)
+    world = env.unwrapped.core.world
+    centres = np.array([[0.5, 0.5], [0.2, 0.8]])
+    points = np.array([[0.5, 0.5], [0.5 + 0.04, 0.5], [0.9, 0.9]])
+    richness = world.richness(points, centres)
+    # Source: the documented linear fall-off 1 - d/r (r = 0.08): centre 1, half-way 0.5.
+    assert richness.shape == (3, 2)
+    assert richness[:, 0] == pytest.approx([1.0, 0.5, 0.0], abs=1e-12)
+    assert np.all(richness[:, 1] == 0.0)

@@ -160,3 +160,32 @@ def test_bad_parameters_name_the_field(kwargs, field):
     with pytest.raises(ConfigError) as caught:
         gym.make("needbench/Shift-v0", **kwargs)
     assert caught.value.path == field
+
+
+def test_sun_and_ambient_are_what_the_step_used():
+    env = ShiftVectorEnv(num_envs=2, day_length=30, max_steps=61)
+    observations, _ = env.reset(seed=1)
+    world = env.core.world
+    clocks, actions, suns = [], [], []
+    for _ in range(60):
+        # The tending rule keeps both bodies in band, so no episode ends (no autoreset).
+        action = tend_needs(observations, 3)
+        clocks.append(env.core.state["clock"].copy())
+        observations, _, terminated, truncated, info = env.step(action)
+        assert not np.any(terminated | truncated)
+        actions.append(action)
+        suns.append(info["sun"])
+    clocks, actions, suns = np.array(clocks), np.array(actions), np.array(suns)
+    assert np.array_equal(clocks[:, 0], np.arange(60))
+    assert np.array_equal(world.sun(clocks), suns)
+    # Source: the double-angle identity sin^2 x = (1 - cos 2x) / 2, with numpy's cos.
+    assert np.allclose(suns, (1.0 - np.cos(2.0 * np.pi * (clocks % 30) / 30)) / 2.0, atol=1e-12)
+    ambient = world.ambient(clocks.ravel(), actions.ravel())
+    temperature = env.core.physiology.index["temperature"]
+    worked = actions.ravel() == WORK
+    assert worked.any() and not worked.all()
+    assert np.array_equal(ambient[worked, temperature], world.sun_heat * suns.ravel()[worked])
+    assert np.all(ambient[~worked, temperature] == world.shade_ambient)
+    others = [k for k in range(3) if k != temperature]
+    assert np.array_equal(ambient[:, others],
+                          np.broadcast_to(env.core.physiology.ambient[others], (120, 2)))

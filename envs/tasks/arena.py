@@ -2,13 +2,30 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from gymnasium import spaces
+from numba import njit
 
+from needbench.envs.engine import (
+    ACTIVITY,
+    AMBIENT,
+    COUNTERS,
+    INTAKE,
+    KEYS,
+    OBSERVATION,
+    OPTIONS,
+    TASK,
+    USES_AMBIENT,
+    WORLD_OFFSET,
+    observe_internal,
+    reset_body,
+    settle_all,
+)
 from needbench.envs.errors import (
     ConfigError,
     check_choice,
@@ -16,9 +33,9 @@ from needbench.envs.errors import (
     check_non_negative,
     check_range,
 )
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.streams import CopyStreams
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+from needbench.envs.physiology import Physiology
+from needbench.envs.streams import draw_uniform
+from needbench.envs.task import NeedEnv, NeedVectorEnv, World
 
 #: The sources of an invented tidal island at dusk, by need (band units).
 #: ``intake`` sources feed their need while the agent is inside the radius:
@@ -115,16 +132,156 @@ def parse_sources(table: Mapping[str, Mapping[str, Any]] | None,
     return tuple(specs)
 
 
+# --- the compiled world: per-copy functions shared by the kernels and the public methods ---
+#
+# np.linalg.norm along an axis of length 2 (what the NumPy world used) is
+# sqrt(add.reduce(x * x)) = sqrt(x0 * x0 + x1 * x1) in that order, which the
+# kernels write out as is (not math.hypot, which rounds differently).
+
+
+@njit(cache=True)
+def source_richness(x, y, centre_x, centre_y, radius):
+    """Strength of one disc source at point (x, y): 1 - d/r inside, 0 outside."""
+    dx = centre_x - x
+    dy = centre_y - y
+    distance = math.sqrt(dx * dx + dy * dy)
+    return min(max(1.0 - distance / radius, 0.0), 1.0)
+
+
+@njit(cache=True)
+def _richness_batch(position, sources, radius, out):
+    for b in range(position.shape[0]):
+        for s in range(radius.shape[0]):
+            out[b, s] = source_richness(position[b, 0], position[b, 1], sources[b, s, 0],
+                                        sources[b, s, 1], radius[s])
+
+
+@njit(cache=True)
+def move(b, actions, position, max_speed):
+    """Move copy ``b`` by its velocity action; return its speed (the action's length, cut to 1)."""
+    ax, ay = actions[b, 0], actions[b, 1]
+    norm = math.sqrt(ax * ax + ay * ay)
+    # Speeds above 1 are cut to 1, keeping the heading.
+    scale = max(norm, 1.0)
+    position[b, 0] = min(max(position[b, 0] + max_speed * (ax / scale), 0.0), 1.0)
+    position[b, 1] = min(max(position[b, 1] + max_speed * (ay / scale), 0.0), 1.0)
+    return min(norm, 1.0)
+
+
+@njit(cache=True)
+def feed(b, position, sources, radius, intake_gain, ambient_map, outside, peak, ambient_needs,
+         base_ambient, band, uses_ambient, intake, ambient):
+    """Copy ``b``'s intake (and ambient, when the world sets it) at its position.
+
+    Overlapping sources of one need do not add up: the richest one counts.
+    The maxima are gathered in the intake and ambient rows, then scaled.
+    """
+    x, y = position[b, 0], position[b, 1]
+    num_needs = intake.shape[1]
+    for k in range(num_needs):
+        intake[b, k] = 0.0
+        if uses_ambient:
+            ambient[b, k] = 0.0
+    for s in range(radius.shape[0]):
+        strength = source_richness(x, y, sources[b, s, 0], sources[b, s, 1], radius[s])
+        for k in range(num_needs):
+            intake[b, k] = max(intake[b, k], strength * intake_gain[s, k])
+            if uses_ambient:
+                ambient[b, k] = max(ambient[b, k], strength * ambient_map[s, k])
+    for k in range(num_needs):
+        intake[b, k] = intake[b, k] * band[k]
+        if uses_ambient:
+            if ambient_needs[k]:
+                warmth = ambient[b, k]
+                ambient[b, k] = base_ambient[k] + band[k] * (
+                    outside[k] + (peak[k] - outside[k]) * warmth)
+            else:
+                ambient[b, k] = base_ambient[k]
+
+
+@njit(cache=True)
+def observe_island(b, position, sources, sensing_range, engine):
+    """Copy ``b``'s observation: deviations, position, then the capped source vectors."""
+    observe_internal(engine, b)
+    observation = engine[OBSERVATION]
+    offset = int(engine[OPTIONS][WORLD_OFFSET])
+    x, y = position[b, 0], position[b, 1]
+    observation[b, offset] = np.float32(x)
+    observation[b, offset + 1] = np.float32(y)
+    for s in range(sources.shape[1]):
+        dx = (sources[b, s, 0] - x) / sensing_range
+        dy = (sources[b, s, 1] - y) / sensing_range
+        # Beyond the sensing range the vector keeps its heading, its length stops at 1.
+        scale = max(math.sqrt(dx * dx + dy * dy), 1.0)
+        column = offset + 2 + 2 * s
+        observation[b, column] = np.float32(min(max(dx / scale, -1.0), 1.0))
+        observation[b, column + 1] = np.float32(min(max(dy / scale, -1.0), 1.0))
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    radius, sensing_range = constants[0], constants[2]
+    position, sources = state
+    keys, counters = engine[KEYS], engine[COUNTERS]
+    for b in range(mask.shape[0]):
+        if mask[b]:
+            reset_body(engine, b)
+            position[b, 0] = draw_uniform(keys, counters, b)
+            position[b, 1] = draw_uniform(keys, counters, b)
+            # Centres keep a whole disc on the island: uniform in [r, 1 - r]^2.
+            for s in range(radius.shape[0]):
+                for j in range(2):
+                    u = draw_uniform(keys, counters, b)
+                    sources[b, s, j] = radius[s] + (1.0 - 2.0 * radius[s]) * u
+            observe_island(b, position, sources, sensing_range, engine)
+
+
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    (radius, max_speed, sensing_range, intake_gain, ambient_map, outside, peak, ambient_needs,
+     base_ambient, band) = constants
+    position, sources = state
+    speed_event, position_event = events
+    intake, ambient, activity, task = engine[INTAKE], engine[AMBIENT], engine[ACTIVITY], \
+        engine[TASK]
+    uses_ambient = engine[USES_AMBIENT][0]
+    for b in range(actions.shape[0]):
+        speed = move(b, actions, position, max_speed)
+        feed(b, position, sources, radius, intake_gain, ambient_map, outside, peak,
+             ambient_needs, base_ambient, band, uses_ambient, intake, ambient)
+        activity[b] = speed
+        task[b] = 0.0
+        speed_event[b] = speed
+        position_event[b, 0] = position[b, 0]
+        position_event[b, 1] = position[b, 1]
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_island(b, position, sources, sensing_range, engine)
+
+
+@njit(cache=True)
+def _observe(constants, state, engine):
+    sensing_range = constants[2]
+    position, sources = state
+    for b in range(position.shape[0]):
+        observe_island(b, position, sources, sensing_range, engine)
+
+
 class ArenaWorld(World):
     """A unit-square island; the agent's velocity is the action; sources are discs.
 
     State: ``position`` (B, 2) of the agent and ``sources`` (B, S, 2) centres of
     all S sources (grouped by need in the body's order), both in island units
     with (0, 0) the south-west corner. Sources stay put for an episode.
+    Events in ``info``: ``speed`` (the action's length, cut to 1) and
+    ``position`` after the step.
     """
 
     parameters = {"sources": None, "max_speed": 0.05, "sensing_range": 1.5}
     spatial = True
+    reset_kernel = staticmethod(_reset)
+    step_kernel = staticmethod(_step)
+    observe_kernel = staticmethod(_observe)
 
     def __init__(self, physiology: Physiology, sources: Mapping | None = None,
                  max_speed: float = 0.05, sensing_range: float = 1.5):
@@ -136,7 +293,7 @@ class ArenaWorld(World):
         rows = [(spec, j) for spec in self.specs for j in range(spec.count)]
         self.num_sources = len(rows)
         self.source_need = np.array([physiology.index[s.need] for s, _ in rows])
-        self.source_radius = np.array([s.radius for s, _ in rows])
+        self.source_radius = np.array([s.radius for s, _ in rows], dtype=np.float64)
         # (S, K) gains: intake per step at a centre (band units), and which
         # sources set which need's ambient.
         self.intake_gain = np.zeros((self.num_sources, k))
@@ -152,6 +309,8 @@ class ArenaWorld(World):
                 self.ambient_outside[i] = spec.outside
                 self.ambient_peak[i] = spec.peak
         self.ambient_needs = self.ambient_map.any(axis=0)
+        # Without ambient sources every need relaxes toward its own ambient.
+        self.uses_ambient = bool(self.ambient_needs.any())
         self.action_space = spaces.Box(-1.0, 1.0, (2,), np.float32)
         names = ["position/x", "position/y"]
         for spec in self.specs:
@@ -161,48 +320,37 @@ class ArenaWorld(World):
         self.feature_low = np.concatenate([np.zeros(2), -np.ones(2 * self.num_sources)])
         self.feature_high = np.ones(2 + 2 * self.num_sources)
 
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
-        position = rng.random((batch, 2))
-        # Centres keep a whole disc on the island: uniform in [r, 1 - r]^2.
-        u = rng.random((batch, self.num_sources, 2))
-        radius = self.source_radius[None, :, None]
-        return {"position": position, "sources": radius + (1.0 - 2.0 * radius) * u}
+    def constants(self) -> tuple:
+        physiology = self.physiology
+        return (self.source_radius, float(self.max_speed), float(self.sensing_range),
+                self.intake_gain, self.ambient_map, self.ambient_outside, self.ambient_peak,
+                self.ambient_needs, physiology.ambient, physiology.band)
+
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
+        return {"position": np.zeros((batch, 2)), "sources": np.zeros((batch, self.num_sources, 2))}
+
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {"speed": np.zeros(batch), "position": np.zeros((batch, 2))}
 
     def richness(self, position: np.ndarray, sources: np.ndarray) -> np.ndarray:
-        """(B, S) strength of each source at ``position``: 1 - d/r inside, 0 outside."""
-        distance = np.linalg.norm(sources - position[:, None, :], axis=2)
-        return np.clip(1.0 - distance / self.source_radius, 0.0, 1.0)
+        """(B, S) strength of each source at ``position`` (B, 2): 1 - d/r inside, 0 outside.
 
-    def step(self, state, actions, body: BodyState, rng: CopyStreams):
-        actions = np.asarray(actions, dtype=np.float64)
-        norm = np.linalg.norm(actions, axis=1)
-        # Speeds above 1 are cut to 1, keeping the heading.
-        speed = np.minimum(norm, 1.0)
-        velocity = actions / np.maximum(norm, 1.0)[:, None]
-        position = np.clip(state["position"] + self.max_speed * velocity, 0.0, 1.0)
-        richness = self.richness(position, state["sources"])
-        band = self.physiology.band
-        # Overlapping sources of one need do not add up: the richest one counts.
-        intake = np.max(richness[:, :, None] * self.intake_gain[None], axis=1) * band
-        ambient = None
-        if self.ambient_needs.any():
-            warmth = np.max(richness[:, :, None] * self.ambient_map[None], axis=1)
-            offset = self.ambient_outside + (self.ambient_peak - self.ambient_outside) * warmth
-            ambient = np.where(self.ambient_needs, self.physiology.ambient + band * offset,
-                               self.physiology.ambient)
-        batch = actions.shape[0]
-        effects = Effects(intake=intake, activity=speed, task_reward=np.zeros(batch),
-                          ambient=ambient,
-                          events={"speed": speed, "position": position.copy()})
-        return {"position": position, "sources": state["sources"]}, effects
+        ``sources`` (B, S, 2) or (S, 2) centres (one layout for every point);
+        the kernels' own :func:`source_richness`.
+        """
+        position = np.ascontiguousarray(position, dtype=np.float64)
+        sources = np.asarray(sources, dtype=np.float64)
+        if position.ndim != 2 or position.shape[1] != 2:
+            raise ValueError(f"position of shape {position.shape}; expected (B, 2)")
+        sources = np.ascontiguousarray(np.broadcast_to(
+            sources, (position.shape[0], self.num_sources, 2)))
+        out = np.empty((position.shape[0], self.num_sources))
+        _richness_batch(position, sources, self.source_radius, out)
+        return out
 
-    def observe(self, state):
-        position = state["position"]
-        relative = (state["sources"] - position[:, None, :]) / self.sensing_range
-        # Beyond the sensing range the vector keeps its heading, its length stops at 1.
-        length = np.linalg.norm(relative, axis=2, keepdims=True)
-        relative = np.clip(relative / np.maximum(length, 1.0), -1.0, 1.0)
-        return np.concatenate([position, relative.reshape(position.shape[0], -1)], axis=1)
+    def position(self, state: dict[str, np.ndarray]) -> np.ndarray:
+        """(B, 2) the agent's position (x east, y north) in island units, a copy."""
+        return state["position"].copy()
 
     def sources(self, state: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         """Centres of each need's sources, ``{need: (B, count, 2)}`` in island units."""
@@ -240,8 +388,7 @@ class ArenaWorld(World):
         xs, ys = np.meshgrid(centres, centres[::-1])
         pixels = np.stack([xs.ravel(), ys.ravel()], axis=1)
         # Each pixel is tinted by the richest source of each need, so gradients show.
-        richness = self.richness(pixels, np.broadcast_to(state["sources"][index],
-                                                         (pixels.shape[0], self.num_sources, 2)))
+        richness = self.richness(pixels, state["sources"][index])
         picture = np.broadcast_to(GROUND_COLOUR, (pixels.shape[0], 3)).copy()
         for s in range(self.num_sources):
             need = self.source_need[s]
@@ -309,7 +456,9 @@ class ArenaEnv(NeedEnv):
     * the common task arguments (``needbench.envs.task``).
 
     For controllers, ``env.unwrapped.core.world.sources(env.unwrapped.core.state)``
-    gives ``{need: (B, count, 2)}`` source centres.
+    gives ``{need: (B, count, 2)}`` source centres, ``world.position(state)`` the
+    (B, 2) agent positions and ``world.richness(position, centres)`` each source's
+    strength there (the step's own computation).
 
     ## Vectorized environment
     ``gymnasium.make_vec("needbench/Arena-v0", num_envs=N,

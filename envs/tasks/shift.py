@@ -2,19 +2,117 @@
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
 from gymnasium import spaces
+from numba import njit
 
+from needbench.envs.engine import (
+    ACTIVITY,
+    AMBIENT,
+    INTAKE,
+    OBSERVATION,
+    OPTIONS,
+    TASK,
+    WORLD_OFFSET,
+    observe_internal,
+    reset_body,
+    settle_all,
+)
 from needbench.envs.errors import ConfigError, check_finite, check_non_negative
-from needbench.envs.physiology import BodyState, Physiology
-from needbench.envs.streams import CopyStreams
-from needbench.envs.task import Effects, NeedEnv, NeedVectorEnv, World
+from needbench.envs.physiology import Physiology
+from needbench.envs.task import NeedEnv, NeedVectorEnv, World
 
 #: Actions of the invented salt-pan harvest, in action-index order.
 WORK, EAT, DRINK, SHADE = 0, 1, 2, 3
 ACTION_NAMES = ("rake salt", "eat flatbread", "drink at the cistern", "rest under the awning")
+
+
+@njit(cache=True)
+def sun_at(clock, day_length):
+    """Sun strength in [0, 1] at step ``clock``: sin^2(pi (clock mod L) / L)."""
+    strength = math.sin(math.pi * (clock % day_length) / day_length)
+    return strength * strength  # numpy's x ** 2 is this product
+
+
+@njit(cache=True)
+def set_ambient(b, action, sun, temperature, sun_heat, shade_ambient, base_ambient, ambient):
+    """Copy ``b``'s ambient row: each need's own, the temperature's set by the pan or shade."""
+    for k in range(ambient.shape[1]):
+        ambient[b, k] = base_ambient[k]
+    ambient[b, temperature] = sun_heat * sun if action == WORK else shade_ambient
+
+
+@njit(cache=True)
+def _sun_batch(clock, day_length, out):
+    for b in range(clock.shape[0]):
+        out[b] = sun_at(clock[b], day_length)
+
+
+@njit(cache=True)
+def _ambient_batch(clock, actions, day_length, temperature, sun_heat, shade_ambient,
+                   base_ambient, out):
+    for b in range(clock.shape[0]):
+        set_ambient(b, actions[b], sun_at(clock[b], day_length), temperature, sun_heat,
+                    shade_ambient, base_ambient, out)
+
+
+@njit(cache=True)
+def observe_day(b, clock, day_length, engine):
+    """Copy ``b``'s observation: deviations, the sun's strength, the time of day."""
+    observe_internal(engine, b)
+    observation = engine[OBSERVATION]
+    offset = int(engine[OPTIONS][WORLD_OFFSET])
+    observation[b, offset] = np.float32(sun_at(clock[b], day_length))
+    observation[b, offset + 1] = np.float32((clock[b] % day_length) / day_length)
+
+
+@njit(cache=True)
+def _reset(mask, constants, state, engine):
+    day_length = constants[3]
+    (clock,) = state
+    for b in range(mask.shape[0]):
+        if mask[b]:
+            reset_body(engine, b)
+            clock[b] = 0
+            observe_day(b, clock, day_length, engine)
+
+
+@njit(cache=True)
+def _step(actions, constants, state, events, engine):
+    (intake_table, activity_table, pay_table, day_length, temperature, sun_heat, shade_ambient,
+     base_ambient) = constants
+    (clock,) = state
+    action_event, worked_event, sun_event = events
+    intake, activity, task, ambient = engine[INTAKE], engine[ACTIVITY], engine[TASK], \
+        engine[AMBIENT]
+    for b in range(actions.shape[0]):
+        action = actions[b]
+        for k in range(intake.shape[1]):
+            intake[b, k] = intake_table[action, k]
+        activity[b] = activity_table[action]
+        task[b] = pay_table[action]
+        sun = sun_at(clock[b], day_length)
+        if temperature >= 0:
+            set_ambient(b, action, sun, temperature, sun_heat, shade_ambient, base_ambient,
+                        ambient)
+        action_event[b] = action
+        worked_event[b] = action == WORK
+        sun_event[b] = sun
+        clock[b] += 1
+    settle_all(engine)
+    for b in range(actions.shape[0]):
+        observe_day(b, clock, day_length, engine)
+
+
+@njit(cache=True)
+def _observe(constants, state, engine):
+    day_length = constants[3]
+    (clock,) = state
+    for b in range(clock.shape[0]):
+        observe_day(b, clock, day_length, engine)
 
 
 class ShiftWorld(World):
@@ -26,12 +124,18 @@ class ShiftWorld(World):
     ``sun_heat * sun(t)`` with ``sun(t) = sin^2(pi t / day_length)`` (0 at dawn
     and dusk, 1 at noon). Every other action pays nothing and is taken in the
     shade (ambient ``shade_ambient``). Needs the body lacks are skipped (no
-    temperature: no heat load).
+    temperature: no heat load, and every need keeps its own ambient).
+
+    State: ``clock`` (B,) steps since dawn. Events in ``info``: ``action``,
+    ``worked`` and ``sun`` (the sun's strength during the step).
     """
 
     parameters = {"pay": 1.0, "work_activity": 1.0, "meal": 0.8, "drink": 0.8,
                   "sun_heat": 1.5, "shade_ambient": -0.5, "day_length": 100}
     default_needs = ("energy", "water", "temperature")
+    reset_kernel = staticmethod(_reset)
+    step_kernel = staticmethod(_step)
+    observe_kernel = staticmethod(_observe)
 
     def __init__(self, physiology: Physiology, pay: float = 1.0, work_activity: float = 1.0,
                  meal: float = 0.8, drink: float = 0.8, sun_heat: float = 1.5,
@@ -57,39 +161,47 @@ class ShiftWorld(World):
         self.activity = np.array([self.work_activity, 0.0, 0.0, 0.0])
         self.task_reward = np.array([self.pay, 0.0, 0.0, 0.0])
         self.temperature = physiology.index.get("temperature")
+        self.uses_ambient = self.temperature is not None
         self.action_space = spaces.Discrete(len(ACTION_NAMES))
         self.feature_names = ("sun", "time_of_day")
         self.feature_low = np.zeros(2)
         self.feature_high = np.ones(2)
 
-    def sun(self, clock: np.ndarray) -> np.ndarray:
-        """Sun strength in [0, 1] at step ``clock`` of the day cycle."""
-        return np.sin(np.pi * (clock % self.day_length) / self.day_length) ** 2
+    def constants(self) -> tuple:
+        temperature = -1 if self.temperature is None else self.temperature
+        return (self.intake, self.activity, self.task_reward, self.day_length, temperature,
+                float(self.sun_heat), float(self.shade_ambient), self.physiology.ambient)
 
-    def ambient(self, clock: np.ndarray, actions: np.ndarray) -> np.ndarray | None:
-        """(B, K) ambient values of a step: the sun's heat at the pan, shade elsewhere."""
-        if self.temperature is None:
-            return None
-        ambient = np.broadcast_to(self.physiology.ambient,
-                                  (actions.shape[0], self.physiology.num_needs)).copy()
-        ambient[:, self.temperature] = np.where(actions == WORK, self.sun_heat * self.sun(clock),
-                                                self.shade_ambient)
-        return ambient
-
-    def initial(self, rng: CopyStreams, batch: int) -> dict[str, np.ndarray]:
+    def allocate(self, batch: int) -> dict[str, np.ndarray]:
         return {"clock": np.zeros(batch, dtype=np.int64)}
 
-    def step(self, state, actions, body: BodyState, rng: CopyStreams):
-        clock = state["clock"]
-        effects = Effects(
-            intake=self.intake[actions], activity=self.activity[actions],
-            task_reward=self.task_reward[actions], ambient=self.ambient(clock, actions),
-            events={"action": actions.copy(), "worked": actions == WORK, "sun": self.sun(clock)})
-        return {"clock": clock + 1}, effects
+    def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
+        return {"action": np.zeros(batch, np.int64), "worked": np.zeros(batch, np.bool_),
+                "sun": np.zeros(batch)}
 
-    def observe(self, state):
-        clock = state["clock"]
-        return np.stack([self.sun(clock), (clock % self.day_length) / self.day_length], axis=1)
+    def sun(self, clock: np.ndarray) -> np.ndarray:
+        """Sun strength in [0, 1] at step ``clock`` of the day cycle (any shape)."""
+        clock = np.asarray(clock)
+        flat = np.ascontiguousarray(clock, dtype=np.float64).reshape(-1)
+        out = np.empty(flat.shape[0])
+        _sun_batch(flat, self.day_length, out)
+        return out.reshape(clock.shape)
+
+    def ambient(self, clock: np.ndarray, actions: np.ndarray) -> np.ndarray | None:
+        """(B, K) ambient values of a step: the sun's heat at the pan, shade elsewhere.
+
+        None when the body has no temperature need (every need keeps its own).
+        """
+        if self.temperature is None:
+            return None
+        clock = np.ascontiguousarray(clock, dtype=np.float64).reshape(-1)
+        actions = np.ascontiguousarray(actions, dtype=np.int64).reshape(-1)
+        if clock.shape != actions.shape:
+            clock = np.ascontiguousarray(np.broadcast_to(clock, actions.shape))
+        out = np.empty((actions.shape[0], self.physiology.num_needs))
+        _ambient_batch(clock, actions, self.day_length, self.temperature, float(self.sun_heat),
+                       float(self.shade_ambient), self.physiology.ambient, out)
+        return out
 
     def text(self, state, index):
         clock = int(state["clock"][index])
