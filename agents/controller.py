@@ -396,20 +396,18 @@ class PlaneRule:
     @classmethod
     def from_core(cls, core: Any, settings: ControllerHyperparameters) -> PlaneRule:
         world = core.world
-        names = list(world.feature_names)
         k = core.physiology.num_needs
         direction = np.full(k, RAISES)
-        needs, columns = [], []
-        for spec in world.specs:
-            i = core.physiology.index[spec.need]
-            if spec.kind == "ambient":
-                direction[i] = RAISES if spec.peak > spec.outside else LOWERS
-            for j in range(spec.count):
+        needs, columns, radius = [], [], []
+        for need, guide in world.source_guides().items():
+            i = core.physiology.index[need]
+            direction[i] = LOWERS if guide.effect == "lowers" else RAISES
+            for features, reach in zip(guide.features, guide.radius, strict=True):
                 needs.append(i)
-                columns.append([k + names.index(f"{spec.need}/{j}/dx"),
-                                k + names.index(f"{spec.need}/{j}/dy")])
-        return cls(settings, k, direction, np.array(needs), np.array(columns),
-                   world.source_radius, world.sensing_range, world.max_speed)
+                columns.append([k + world.feature_index(name) for name in features])
+                radius.append(reach)
+        return cls(settings, k, direction, np.array(needs), np.array(columns), np.array(radius),
+                   world.sensing_range, world.max_speed)
 
     def act(self, observations: np.ndarray, deviation: np.ndarray) -> np.ndarray:
         copies = np.arange(observations.shape[0])

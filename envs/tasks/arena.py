@@ -9,8 +9,8 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     ACTIVITY,
     AMBIENT,
@@ -35,7 +35,7 @@ from needbench.envs.errors import (
 )
 from needbench.envs.physiology import Physiology
 from needbench.envs.streams import draw_uniform
-from needbench.envs.task import NeedEnv, NeedVectorEnv, World
+from needbench.envs.task import NeedEnv, NeedVectorEnv, SourceGuide, World
 
 #: The sources of an invented tidal island at dusk, by need (band units).
 #: ``intake`` sources feed their need while the agent is inside the radius:
@@ -139,7 +139,7 @@ def parse_sources(table: Mapping[str, Mapping[str, Any]] | None,
 # kernels write out as is (not math.hypot, which rounds differently).
 
 
-@njit(cache=True)
+@inline_kernel
 def source_richness(x, y, centre_x, centre_y, radius):
     """Strength of one disc source at point (x, y): 1 - d/r inside, 0 outside."""
     dx = centre_x - x
@@ -148,7 +148,7 @@ def source_richness(x, y, centre_x, centre_y, radius):
     return min(max(1.0 - distance / radius, 0.0), 1.0)
 
 
-@njit(cache=True)
+@kernel
 def _richness_batch(position, sources, radius, out):
     for b in range(position.shape[0]):
         for s in range(radius.shape[0]):
@@ -156,7 +156,7 @@ def _richness_batch(position, sources, radius, out):
                                         sources[b, s, 1], radius[s])
 
 
-@njit(cache=True)
+@inline_kernel
 def move(b, actions, position, max_speed):
     """Move copy ``b`` by its velocity action; return its speed (the action's length, cut to 1)."""
     ax, ay = actions[b, 0], actions[b, 1]
@@ -168,7 +168,7 @@ def move(b, actions, position, max_speed):
     return min(norm, 1.0)
 
 
-@njit(cache=True)
+@inline_kernel
 def feed(b, position, sources, radius, intake_gain, ambient_map, outside, peak, ambient_needs,
          base_ambient, band, uses_ambient, intake, ambient):
     """Copy ``b``'s intake (and ambient, when the world sets it) at its position.
@@ -199,7 +199,7 @@ def feed(b, position, sources, radius, intake_gain, ambient_map, outside, peak, 
                 ambient[b, k] = base_ambient[k]
 
 
-@njit(cache=True)
+@inline_kernel
 def observe_island(b, position, sources, sensing_range, engine):
     """Copy ``b``'s observation: deviations, position, then the capped source vectors."""
     observe_internal(engine, b)
@@ -218,7 +218,7 @@ def observe_island(b, position, sources, sensing_range, engine):
         observation[b, column + 1] = np.float32(min(max(dy / scale, -1.0), 1.0))
 
 
-@njit(cache=True)
+@kernel
 def _reset(mask, constants, state, engine):
     radius, sensing_range = constants[0], constants[2]
     position, sources = state
@@ -236,7 +236,7 @@ def _reset(mask, constants, state, engine):
             observe_island(b, position, sources, sensing_range, engine)
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     (radius, max_speed, sensing_range, intake_gain, ambient_map, outside, peak, ambient_needs,
      base_ambient, band) = constants
@@ -259,7 +259,7 @@ def _step(actions, constants, state, events, engine):
         observe_island(b, position, sources, sensing_range, engine)
 
 
-@njit(cache=True)
+@kernel
 def _observe(constants, state, engine):
     sensing_range = constants[2]
     position, sources = state
@@ -347,6 +347,19 @@ class ArenaWorld(World):
         out = np.empty((position.shape[0], self.num_sources))
         _richness_batch(position, sources, self.source_radius, out)
         return out
+
+    def source_guides(self) -> dict[str, SourceGuide]:
+        """Intake sources raise their need; an ambient source raises it when its
+        peak is above the ambient outside, lowers it otherwise. Features: per
+        disc, the (dx, dy) vector to its centre, over ``sensing_range``."""
+        guides = {}
+        for spec in self.specs:
+            warms = spec.kind == "intake" or spec.peak > spec.outside
+            guides[spec.need] = SourceGuide(
+                spec.need, spec.kind, "raises" if warms else "lowers",
+                tuple((f"{spec.need}/{j}/dx", f"{spec.need}/{j}/dy") for j in range(spec.count)),
+                (spec.radius,) * spec.count)
+        return guides
 
     def position(self, state: dict[str, np.ndarray]) -> np.ndarray:
         """(B, 2) the agent's position (x east, y north) in island units, a copy."""

@@ -7,8 +7,8 @@ from typing import Any
 
 import numpy as np
 from gymnasium import spaces
-from numba import njit
 
+from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     ACTIVITY,
     AMBIENT,
@@ -30,14 +30,14 @@ WORK, EAT, DRINK, SHADE = 0, 1, 2, 3
 ACTION_NAMES = ("rake salt", "eat flatbread", "drink at the cistern", "rest under the awning")
 
 
-@njit(cache=True)
+@inline_kernel
 def sun_at(clock, day_length):
     """Sun strength in [0, 1] at step ``clock``: sin^2(pi (clock mod L) / L)."""
     strength = math.sin(math.pi * (clock % day_length) / day_length)
     return strength * strength  # numpy's x ** 2 is this product
 
 
-@njit(cache=True)
+@inline_kernel
 def set_ambient(b, action, sun, temperature, sun_heat, shade_ambient, base_ambient, ambient):
     """Copy ``b``'s ambient row: each need's own, the temperature's set by the pan or shade."""
     for k in range(ambient.shape[1]):
@@ -45,13 +45,13 @@ def set_ambient(b, action, sun, temperature, sun_heat, shade_ambient, base_ambie
     ambient[b, temperature] = sun_heat * sun if action == WORK else shade_ambient
 
 
-@njit(cache=True)
+@kernel
 def _sun_batch(clock, day_length, out):
     for b in range(clock.shape[0]):
         out[b] = sun_at(clock[b], day_length)
 
 
-@njit(cache=True)
+@kernel
 def _ambient_batch(clock, actions, day_length, temperature, sun_heat, shade_ambient,
                    base_ambient, out):
     for b in range(clock.shape[0]):
@@ -59,7 +59,7 @@ def _ambient_batch(clock, actions, day_length, temperature, sun_heat, shade_ambi
                     shade_ambient, base_ambient, out)
 
 
-@njit(cache=True)
+@inline_kernel
 def observe_day(b, clock, day_length, engine):
     """Copy ``b``'s observation: deviations, the sun's strength, the time of day."""
     observe_internal(engine, b)
@@ -69,7 +69,7 @@ def observe_day(b, clock, day_length, engine):
     observation[b, offset + 1] = np.float32((clock[b] % day_length) / day_length)
 
 
-@njit(cache=True)
+@kernel
 def _reset(mask, constants, state, engine):
     day_length = constants[3]
     (clock,) = state
@@ -80,7 +80,7 @@ def _reset(mask, constants, state, engine):
             observe_day(b, clock, day_length, engine)
 
 
-@njit(cache=True)
+@kernel
 def _step(actions, constants, state, events, engine):
     (intake_table, activity_table, pay_table, day_length, temperature, sun_heat, shade_ambient,
      base_ambient) = constants
@@ -107,7 +107,7 @@ def _step(actions, constants, state, events, engine):
         observe_day(b, clock, day_length, engine)
 
 
-@njit(cache=True)
+@kernel
 def _observe(constants, state, engine):
     day_length = constants[3]
     (clock,) = state
