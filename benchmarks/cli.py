@@ -1,4 +1,5 @@
-"""The ``needbench`` command line: list, describe, run, results, watch.
+"""The ``needbench`` command line: list, describe, run, results, watch, report,
+compare, drive.
 
 Exit codes: 0 success; 1 some jobs of a run failed (their tracebacks are in
 the store); 2 bad input (unknown task, agent or suite, an invalid suite file,
@@ -484,6 +485,66 @@ def command_watch(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_report(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.report import build_report
+
+    out = Path(args.out) if args.out else Path(args.location if Path(args.location).is_dir()
+                                               else Path(args.location).parent) \
+        / f"report.{args.format}"
+    with _open_store(args.location) as store:
+        report = build_report(store, out, format=args.format, suite=args.suite)
+    folder = report.figures[0].path.parent if report.figures else None
+    print(f"report: {report.path} ({len(report.sections) - 1} sections after the run facts, "
+          f"{len(report.figures)} figures)")
+    if folder is not None:
+        print(f"figures: {folder}/ (PNG)")
+    return 0
+
+
+def command_compare(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.compare import compare, comparison_figure, format_comparison
+    from needbench.benchmarks.figures import save_png
+
+    first, second = args.agents
+    with _open_store(args.location) as store:
+        comparison = compare(store, first, second, args.metric)
+        agents = sorted({run["agent"] for run in store.runs(status="done")})
+    if args.json:
+        print(comparison.to_json())
+    else:
+        print(format_comparison(comparison))
+    base = Path(args.location) if Path(args.location).is_dir() else Path(args.location).parent
+    out = Path(args.out) if args.out else base / f"compare-{first}-{second}-{args.metric}"
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "comparison.json").write_text(comparison.to_json() + "\n", encoding="utf-8")
+    save_png(comparison_figure(comparison, agents), out / "comparison.png")
+    if not args.json:
+        print(f"\nwritten: {out / 'comparison.json'}, {out / 'comparison.png'}")
+    return 0
+
+
+def command_drive(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.figures import drive_figure, save_png
+    from needbench.envs import make_drive, preset
+
+    body = preset(args.preset)
+    names = args.needs or list(body.needs)[:2]
+    for name in names:
+        if name not in body.needs:
+            raise ConfigError("needs", name, f"needs of the {args.preset} preset: "
+                              + ", ".join(body.needs))
+    needs = [body.needs[name] for name in names]
+    band = [need.band for need in needs]
+    # Deviations count in comfort-band units, as the tasks' drives do.
+    drive = make_drive("homeostatic", n=args.n, m=args.m, scale=band, num_needs=2)
+    figure = drive_figure(drive, names, [need.unit for need in needs],
+                          [need.set_point for need in needs], band,
+                          f"homeostatic drive n = {args.n:g}, m = {args.m:g} "
+                          f"({args.preset} preset)", outcome=args.outcome)
+    print(f"drive figure: {save_png(figure, args.out)}")
+    return 0
+
+
 # ----------------------------------------------------------------------------
 # The parser
 # ----------------------------------------------------------------------------
@@ -583,6 +644,65 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--fps", metavar="F", type=float, default=8.0,
                        help="frames per second on a terminal; 0 for no pause (default: 8)")
     watch.set_defaults(handler=command_watch)
+
+    report = commands.add_parser(
+        "report", help="write an HTML or Markdown report with figures of a run",
+        description="Write a report of a results store: the run's facts, one table per task "
+        "(IQM and 95%% CI of every metric), and figures (internal-state traces, stability "
+        "against return, learning curves, deviation per need, the drive landscape), every "
+        "figure also as a PNG file. The HTML page embeds its figures and opens with no "
+        "network.")
+    report.add_argument("location", metavar="DIR",
+                        help=f"a run's output folder, or a {STORE_NAME} file")
+    report.add_argument("--out", metavar="FILE", default=None,
+                        help="the page to write (default: DIR/report.html or DIR/report.md); "
+                        "figures go to <FILE stem>-figures/ beside it")
+    report.add_argument("--format", choices=("html", "md"), default="html",
+                        help="html (default), or md for a Markdown summary linking the PNGs")
+    report.add_argument("--suite", metavar="NAME", default=None,
+                        help="only the runs of this suite (default: every run of the store)")
+    report.set_defaults(handler=command_report)
+
+    comparing = commands.add_parser(
+        "compare", help="compare two agents: probability of improvement, IQM difference",
+        description="Compare two agents of a results store on one metric, per task and over "
+        "all tasks both ran: the probability that a run of the first beats a run of the "
+        "second, and the difference of their IQMs, each with a 95%% bootstrap CI "
+        "(Agarwal et al. 2021). Prints a table and writes comparison.json and "
+        "comparison.png.")
+    comparing.add_argument("location", metavar="DIR",
+                           help=f"a run's output folder, or a {STORE_NAME} file")
+    comparing.add_argument("--agents", nargs=2, metavar=("A", "B"), required=True,
+                           help="the two agents, A compared against B")
+    comparing.add_argument("--metric", default="return",
+                           choices=("return", "extrinsic_return", "discounted_drive",
+                                    "normalised_discounted_drive", "discounted_deviation",
+                                    "time_in_band", "survival", "overconsumption"),
+                           help="the metric compared (default: return)")
+    comparing.add_argument("--out", metavar="DIR", default=None,
+                           help="folder of comparison.json and comparison.png (default: "
+                           "DIR/compare-A-B-METRIC)")
+    comparing.add_argument("--json", action="store_true",
+                           help="print the comparison as JSON instead of a table")
+    comparing.set_defaults(handler=command_compare)
+
+    drive = commands.add_parser(
+        "drive", help="draw the drive landscape for chosen m and n (no run needed)",
+        description="Draw the homeostatic drive D(h) = (sum_i |(h*_i - h_i)/band_i|^n)^(1/m) "
+        "over two needs of a preset, and the reward of one fixed outcome at several "
+        "internal states, as a PNG.")
+    drive.add_argument("--m", type=float, default=2.0, help="the root m (default: 2)")
+    drive.add_argument("--n", type=float, default=3.0, help="the exponent n (default: 3)")
+    drive.add_argument("--preset", choices=("abstract", "mammal"), default="abstract",
+                       help="the preset whose needs are drawn (default: abstract)")
+    drive.add_argument("--needs", nargs=2, metavar=("NEED", "NEED"), default=None,
+                       help="the two needs drawn (default: the preset's first two)")
+    drive.add_argument("--outcome", type=float, default=1.0,
+                       help="the fixed outcome: an intake of this many comfort bands of the "
+                       "first need (default: 1)")
+    drive.add_argument("--out", metavar="FILE.png", default="drive.png",
+                       help="the PNG to write (default: drive.png)")
+    drive.set_defaults(handler=command_drive)
     return parser
 
 
