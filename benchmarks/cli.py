@@ -485,7 +485,17 @@ def command_watch(args: argparse.Namespace) -> int:
     return 0
 
 
+def _require_plots() -> None:
+    """ConfigError saying how to install matplotlib, for the verbs that draw."""
+    try:
+        importlib.import_module("matplotlib")
+    except ImportError as error:
+        raise ConfigError("plots", "matplotlib", "an installed matplotlib "
+                          "(pip install 'needbench[plots]')") from error
+
+
 def command_report(args: argparse.Namespace) -> int:
+    _require_plots()
     from needbench.benchmarks.report import build_report
 
     out = Path(args.out) if args.out else Path(args.location if Path(args.location).is_dir()
@@ -502,6 +512,7 @@ def command_report(args: argparse.Namespace) -> int:
 
 
 def command_compare(args: argparse.Namespace) -> int:
+    _require_plots()
     from needbench.benchmarks.compare import compare, comparison_figure, format_comparison
     from needbench.benchmarks.figures import save_png
 
@@ -524,6 +535,7 @@ def command_compare(args: argparse.Namespace) -> int:
 
 
 def command_drive(args: argparse.Namespace) -> int:
+    _require_plots()
     from needbench.benchmarks.figures import drive_figure, save_png
     from needbench.envs import make_drive, preset
 
@@ -541,7 +553,8 @@ def command_drive(args: argparse.Namespace) -> int:
                           [need.set_point for need in needs], band,
                           f"homeostatic drive n = {args.n:g}, m = {args.m:g} "
                           f"({args.preset} preset)", outcome=args.outcome)
-    print(f"drive figure: {save_png(figure, args.out)}")
+    save_png(figure, args.out)
+    print(f"drive figure: {args.out}")
     return 0
 
 

@@ -2,8 +2,9 @@
 
 Every function here takes plain data (traces, estimates, need descriptions)
 and returns a ``matplotlib.figure.Figure`` of :data:`FIGURE_SIZE`; it never
-reads a store, so each figure can be tested on data made by hand.
-:func:`save_png` writes a figure at exactly :data:`FIGURE_PIXELS`.
+reads a store, so each figure can be tested on data made by hand. Figures
+are made without pyplot (no global figure registry to leak into), and
+:func:`save_png` writes one at exactly :data:`FIGURE_PIXELS`.
 
 Colours: :data:`PALETTE` is our own list, picked by the usual rules for
 readers with a colour-vision deficiency (hues spread around the wheel, mixed
@@ -24,9 +25,11 @@ import matplotlib
 
 matplotlib.use("Agg")
 
-import matplotlib.pyplot as plt  # noqa: E402  (the backend is chosen first)
+import matplotlib.patches  # noqa: E402  (the backend is chosen first)
+import matplotlib.ticker  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.lines import Line2D  # noqa: E402
 
 #: Our palette: (name, hex colour), in the order agents receive them.
 PALETTE: tuple[tuple[str, str], ...] = (
@@ -79,20 +82,20 @@ def new_figure(rows: int = 1, columns: int = 1, **kwargs: Any) -> tuple[Figure, 
     return figure, axes
 
 
-def save_png(figure: Figure, path: str | Path) -> Path:
-    """Write the figure as a PNG of exactly :data:`FIGURE_PIXELS` and free it."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    figure.savefig(path, format="png", dpi=DPI)
-    plt.close(figure)
-    return path
-
-
 def png_bytes(figure: Figure) -> bytes:
-    """The figure as PNG bytes (same size as :func:`save_png`)."""
+    """The figure as PNG bytes, exactly :data:`FIGURE_PIXELS` in size."""
     buffer = io.BytesIO()
     figure.savefig(buffer, format="png", dpi=DPI)
     return buffer.getvalue()
+
+
+def save_png(figure: Figure, path: str | Path) -> bytes:
+    """Write the figure as a PNG file (folders made as needed) and return its bytes."""
+    data = png_bytes(figure)
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_bytes(data)
+    return data
 
 
 # ----------------------------------------------------------------------------
@@ -223,7 +226,7 @@ def _event_strip(axis: Any, episodes: Mapping[str, Mapping[str, np.ndarray]], ne
             marker = EVENT_MARKERS[names.index(name) % len(EVENT_MARKERS)]
             axis.scatter(steps, np.full(steps.shape, row), marker=marker, s=18,
                          color=styles[label].colour, linewidths=1.0)
-    handles = [plt.Line2D([], [], linestyle="", marker=EVENT_MARKERS[i % len(EVENT_MARKERS)],
+    handles = [Line2D([], [], linestyle="", marker=EVENT_MARKERS[i % len(EVENT_MARKERS)],
                           color="#333333", label=name) for i, name in enumerate(names)]
     axis.set_yticks(range(len(labels)), labels, fontsize=8)
     axis.set_ylim(-0.6, len(labels) - 0.4)

@@ -357,9 +357,7 @@ def task_figures(store, task: TaskResults, styles, folder: Path) -> list[FigureF
 
     def keep(figure, kind: str, title: str, caption: str) -> None:
         path = folder / f"{stem}-{kind}.png"
-        data = figures.png_bytes(figure)
-        figures.save_png(figure, path)
-        made.append(FigureFile(title, caption, path, data))
+        made.append(FigureFile(title, caption, path, figures.save_png(figure, path)))
 
     needs, _ = _needs_of(task)
     traces = chosen_traces(store, task)
@@ -446,8 +444,7 @@ def drive_landscape(task: TaskResults, folder: Path) -> FigureFile | None:
                                   [n.unit for n in needs[:2]], physiology.set_point[:2],
                                   physiology.band[:2], f"{task.name}, {description}")
     path = folder / f"drive-{_safe(task.name)}.png"
-    data = figures.png_bytes(figure)
-    figures.save_png(figure, path)
+    data = figures.save_png(figure, path)
     return FigureFile("The drive landscape", "The task's own drive over its first two needs "
                       "(the others at their set points), and the reward of one fixed outcome "
                       "at several internal states.", path, data)
