@@ -25,6 +25,7 @@ import numpy as np
 from needbench.benchmarks.report import (
     CONFIDENCE,
     MIN_RUNS_FOR_INTERVAL,
+    NO_INTERVAL_NOTE,
     REPETITIONS,
     SEED,
     task_results,
@@ -206,4 +207,6 @@ def comparison_figure(comparison: Comparison, agents: list[str] | None = None):
                 f"{comparison.metric}: IQM and 95 % CI",
                 [(row.task, Row.bounds(row.probability), Row.bounds(row.difference))
                  for row in comparison.rows],
-                comparison.title, comparison.agents, styles)
+                comparison.title, comparison.agents, styles,
+                NO_INTERVAL_NOTE if any(row.probability[1] is None for row in comparison.rows)
+                else None)

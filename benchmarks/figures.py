@@ -98,6 +98,13 @@ def save_png(figure: Figure, path: str | Path) -> bytes:
     return data
 
 
+def note_missing_intervals(axis: Any, note: str | None) -> None:
+    """A small note in the corner of a panel, e.g. why some whiskers are missing."""
+    if note:
+        axis.text(0.005, 0.005, note, transform=axis.transAxes, ha="left", va="bottom",
+                  fontsize=7, color="#444444")
+
+
 # ----------------------------------------------------------------------------
 # 1. Internal-state traces
 # ----------------------------------------------------------------------------
@@ -117,8 +124,8 @@ def _event_steps(trace: Mapping[str, np.ndarray], need_count: int) -> dict[str, 
 
     Events are the boolean per-step keys a task puts in its info (``cue``,
     ``disturbance``, ``lure``, ``eaten``...), marked where they turn true (so
-    a window or a lasting state shows as its onset), plus every step with an
-    intake of any need.
+    a window or a lasting state shows as its onset), every step with an
+    intake of any need, and the last step of an episode that terminated.
     """
     steps = np.asarray(trace["reward"]).shape[0]
     skip = {"alive", "reward", "reward_internal", "reward_task", "action", "terminated",
@@ -129,6 +136,8 @@ def _event_steps(trace: Mapping[str, np.ndarray], need_count: int) -> dict[str, 
         eaten = np.flatnonzero(np.any(intake > 0, axis=1))
         if eaten.size:
             events["intake"] = eaten + 1
+    if bool(np.asarray(trace.get("terminated", False))):
+        events["terminated (lethal level)"] = np.array([steps])
     for key in sorted(trace):
         values = np.asarray(trace[key])
         if key in skip or values.shape != (steps,) or values.dtype != bool:
@@ -300,7 +309,7 @@ def pareto_front(points: Sequence[tuple[float, float]]) -> list[int]:
 
 
 def tradeoff_figure(task: str, points: Sequence[Point], styles: Mapping[str, Style],
-                    x_title: str, y_title: str) -> Figure:
+                    x_title: str, y_title: str, note: str | None = None) -> Figure:
     """Stability (y, lower is better) against return (x, higher is better), with CIs."""
     figure, axes = new_figure()
     axis = axes[0, 0]
@@ -327,6 +336,7 @@ def tradeoff_figure(task: str, points: Sequence[Point], styles: Mapping[str, Sty
     axis.set_title(f"{task}: stability against return, IQM over runs with 95% CI")
     axis.legend(loc="best", fontsize=8)
     axis.grid(alpha=0.3)
+    note_missing_intervals(axis, note)
     return figure
 
 
@@ -379,7 +389,8 @@ def learning_figure(task: str, panels: Sequence[tuple[str, Sequence[Curve]]],
 
 def deviation_figure(task: str, needs: Sequence[str],
                      bars: Mapping[str, Sequence[tuple[float, float, float] | None]],
-                     styles: Mapping[str, Style], agent_of: Mapping[str, str]) -> Figure:
+                     styles: Mapping[str, Style], agent_of: Mapping[str, str],
+                     note: str | None = None) -> Figure:
     """Grouped bars: per need, one bar per agent of its mean |h - h*| / band, with CI."""
     figure, axes = new_figure()
     axis = axes[0, 0]
@@ -402,6 +413,7 @@ def deviation_figure(task: str, needs: Sequence[str],
     axis.set_title(f"{task}: deviation per need, IQM over runs with 95% CI (lower is better)")
     axis.legend(loc="best", fontsize=8)
     axis.grid(axis="y", alpha=0.3)
+    note_missing_intervals(axis, note)
     return figure
 
 
@@ -475,7 +487,7 @@ def drive_figure(drive: Callable[[np.ndarray, np.ndarray], np.ndarray], names: S
 def comparison_figure(title: str, rows: Sequence[tuple[str, tuple[float, float, float],
                                                        tuple[float, float, float]]],
                       metric_title: str, names: tuple[str, str],
-                      styles: Mapping[str, Style]) -> Figure:
+                      styles: Mapping[str, Style], note: str | None = None) -> Figure:
     """Probability of improvement (left) and IQM difference (right), one row per task.
 
     Args:
@@ -502,5 +514,6 @@ def comparison_figure(title: str, rows: Sequence[tuple[str, tuple[float, float, 
     axes[0, 0].set_yticks(y, labels)
     axes[0, 0].set_ylabel("task")
     axes[0, 0].set_xlim(-0.02, 1.02)
+    note_missing_intervals(axes[0, 0], note)
     figure.suptitle(title)
     return figure

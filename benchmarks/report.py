@@ -49,6 +49,8 @@ SEED = 0
 CONFIDENCE = 0.95
 #: Fewer runs than this: the IQM alone, no interval.
 MIN_RUNS_FOR_INTERVAL = 3
+#: Said on a figure where some estimate has no interval.
+NO_INTERVAL_NOTE = f"no whiskers where fewer than {MIN_RUNS_FOR_INTERVAL} runs"
 
 #: Learning-curve scalar names, newest first; the first one a run logged is used.
 CURVE_NAMES: dict[str, tuple[str, ...]] = {
@@ -379,14 +381,17 @@ def task_figures(store, task: TaskResults, styles, folder: Path) -> list[FigureF
     x_key, x_title = (("extrinsic_return", "task return (task units)") if extrinsic else
                       ("return", "return (reward units)"))
     points = []
+    missing = False
     for series in task.series:
         x = estimate(series.values(x_key), True)
         y = estimate(series.values("discounted_deviation"), False)
         if x is not None and y is not None:
             points.append(figures.Point(series.agent, series.label, x.bounds, y.bounds))
+            missing |= x.low is None or y.low is None
     if points:
         keep(figures.tradeoff_figure(task.name, points, styles, x_title,
-                                     "discounted deviation (band units)"), "tradeoff",
+                                     "discounted deviation (band units)",
+                                     NO_INTERVAL_NOTE if missing else None), "tradeoff",
              "Stability against return",
              "Each agent and sweep point: IQM over runs with 95 % CI whiskers on both axes "
              "(none with fewer than 3 runs); the dashed line joins the Pareto front.")
@@ -408,13 +413,16 @@ def task_figures(store, task: TaskResults, styles, folder: Path) -> list[FigureF
              "then IQM over runs; agents that do not learn have no curve.")
     names = [need.name for need in needs]
     bars = {}
+    missing = False
     for series in task.series:
         values = [estimate(series.values(f"deviation/{name}"), False) for name in names]
         if any(value is not None for value in values):
             bars[series.label] = [None if value is None else value.bounds for value in values]
+            missing |= any(value is not None and value.low is None for value in values)
     if bars:
         keep(figures.deviation_figure(task.name, names, bars, styles,
-                                      {s.label: s.agent for s in task.series}),
+                                      {s.label: s.agent for s in task.series},
+                                      NO_INTERVAL_NOTE if missing else None),
              "deviation", "Deviation per need",
              "Mean |h - h*| / band over each episode's steps, IQM over runs with 95 % CI.")
     return made
