@@ -30,7 +30,9 @@ from needbench.envs.errors import ConfigError
 
 #: File names inside a run's output folder.
 STORE_NAME = "results.sqlite3"
-CSV_NAME = "results.csv"
+#: One row per run (its identity and mean metrics); the aggregate table is
+#: `needbench results DIR --csv`.
+CSV_NAME = "runs.csv"
 TENSORBOARD_NAME = "tensorboard"
 
 #: The results table: (metric key of a run summary, column title, higher is better).
@@ -40,6 +42,9 @@ TABLE_METRICS = (
     ("time_in_band", "time in band", True),
     ("survival", "survival", True),
 )
+
+#: Seconds between progress lines when stdout is not a terminal (a log, nohup).
+PROGRESS_LINE_SECONDS = 10.0
 
 #: Bootstrap resamples behind each confidence interval of the results table.
 TABLE_REPETITIONS = 2000
@@ -302,17 +307,30 @@ def command_list(args: argparse.Namespace) -> int:
     return 0
 
 
-def _format_value(value: Any, limit: int = 70) -> str:
-    text = repr(value)
-    return text if len(text) <= limit else text[:limit - 3] + "..."
-
-
 def _space_text(space: Any) -> str:
     from gymnasium import spaces
 
     if isinstance(space, spaces.Box) and int(np.prod(space.shape)) > 8:
         return f"Box(shape={space.shape}, dtype={space.dtype})"
     return str(space)
+
+
+def docstring_section(text: str | None, title: str) -> str:
+    """The body of a ``## title`` section of a Gymnasium-style class docstring, dedented."""
+    import textwrap
+
+    lines = textwrap.dedent("\n".join((text or "").splitlines()[1:])).splitlines()
+    body: list[str] = []
+    inside = False
+    for line in lines:
+        if line.strip().startswith("## "):
+            if inside:
+                break
+            inside = line.strip()[3:].strip().lower() == title.lower()
+            continue
+        if inside:
+            body.append(line)
+    return "\n".join(body).strip()
 
 
 def command_describe(args: argparse.Namespace) -> int:
@@ -338,9 +356,16 @@ def command_describe(args: argparse.Namespace) -> int:
             print(f"  entries 0..{internal - 1}: deviations (h - h*) / band of "
                   + ", ".join(core.need_names) + ", in comfort-band units")
         if features:
-            shown = ", ".join(features[:8]) + (", ..." if len(features) > 8 else "")
-            print(f"  then {len(features)} world features: {shown}")
+            import textwrap
+
+            print(f"  entries {internal}..{internal + len(features) - 1}: {len(features)} "
+                  "world features, in order:")
+            print(textwrap.fill(", ".join(features), width=96, initial_indent="    ",
+                                subsequent_indent="    ", break_on_hyphens=False))
         print(f"action space: {env.action_space}")
+        actions = docstring_section(env_class.__doc__, "Action Space").replace("``", "")
+        if actions:
+            print("  " + actions.replace("\n", "\n  "))
         print(f"time limit: {core.max_steps} steps; on lethal levels: {config.on_lethal}")
         print(f"drive: {config.drive} {dict(config.drive_params) or ''}".rstrip())
         print(f"reward: {config.reward} (drive_weight {config.drive_weight}, "
@@ -364,7 +389,7 @@ def command_describe(args: argparse.Namespace) -> int:
         print("\ndefaults (keyword arguments of gymnasium.make / [task.kwargs])")
         width = max(len(key) for key in defaults)
         for key, value in defaults.items():
-            print(f"  {key:<{width}}  {_format_value(value)}")
+            print(f"  {key:<{width}}  {value!r}")
     finally:
         env.close()
     return 0
@@ -390,11 +415,12 @@ def command_run(args: argparse.Namespace) -> int:
         tensorboard = None
     settings = RunSettings(tensorboard_root=None if tensorboard is None else str(tensorboard),
                            keep_traces=args.traces, git_revision=git_revision())
-    show_progress = not args.quiet and sys.stdout.isatty()
     with Store(out / STORE_NAME) as store:
         summary = run_suite(suite, store, workers=args.workers, backend=args.backend,
                             address=args.address, settings=settings,
-                            max_retries=args.max_retries, progress=show_progress)
+                            max_retries=args.max_retries, progress=not args.quiet,
+                            progress_every=None if sys.stdout.isatty()
+                            else PROGRESS_LINE_SECONDS)
         hashes = [job.hash for job in summary.jobs]
         failed = [run for run in store.runs(suite=suite.name, status="failed")
                   if run["hash"] in set(hashes)]
@@ -404,21 +430,39 @@ def command_run(args: argparse.Namespace) -> int:
                   f"{len(summary.skipped)} already done, {len(summary.failed)} failed now, "
                   f"{len(summary.not_applicable)} not applicable "
                   f"({summary.wall_seconds:.1f} s)")
-            reasons: dict[tuple[str, str], str] = {}
-            for job, reason in summary.not_applicable:
-                reasons.setdefault((job.task_id, job.agent_name), reason)
-            for (task_id, agent), reason in reasons.items():
-                print(f"not applicable, not run: {agent} on {task_id}: {reason}")
+            if summary.skipped:
+                print(f"{len(summary.skipped)} jobs already done in {out / STORE_NAME} were "
+                      "not run again (another --out starts afresh)")
+            _print_not_applicable(summary, args.verbose)
         print(format_table(result_cells(store, hashes)))
     for run in failed:
         last = (run["error"] or "").strip().splitlines()[-1:] or [""]
         print(f"failed: {run['task_id']} {run['agent']} seed={run['seed']}: {last[0]}",
               file=sys.stderr)
     if not args.quiet:
-        print(f"results: {out / STORE_NAME}, {out / CSV_NAME}")
+        print(f"results store: {out / STORE_NAME}; one row per run: {out / CSV_NAME}; "
+              f"the table above as CSV: needbench results {out} --csv")
         if tensorboard is not None:
             print(f"tensorboard: tensorboard --logdir {tensorboard}")
     return 1 if failed else 0
+
+
+def _print_not_applicable(summary, verbose: bool) -> None:
+    """One line for the pairs an agent does not handle; with ``verbose``, one line each."""
+    pairs: dict[tuple[str, str], str] = {}
+    for job, _ in summary.not_applicable:
+        pairs.setdefault((job.agent_name, job.task_id), summary.needs.get(job.hash, ""))
+    if not pairs:
+        return
+    count = f"{len(pairs)} agent-task pair{'s' if len(pairs) != 1 else ''} not applicable"
+    jobs = len(summary.not_applicable)
+    jobs_text = f"{jobs} job{'s' if jobs != 1 else ''} not run"
+    if not verbose:
+        print(f"{count} (the agent cannot act on that task), {jobs_text}; --verbose lists them")
+        return
+    print(f"{count}, {jobs_text}:")
+    for (agent, task_id), needs in sorted(pairs.items()):
+        print(f"  {agent} on {task_id.removeprefix('needbench/')}: the agent needs {needs}")
 
 
 def command_results(args: argparse.Namespace) -> int:
@@ -605,7 +649,8 @@ def build_parser() -> argparse.ArgumentParser:
     run = commands.add_parser(
         "run", help="run a suite (resumes: jobs already done are skipped)",
         description="Run every job of a suite, record each in the results store as it "
-        "finishes, then print the results table and write results.csv. Rerunning with "
+        f"finishes, then print the results table and write {CSV_NAME} (one row per run). "
+        "Rerunning with "
         "the same --out skips the jobs already done.")
     run.add_argument("suite", metavar="SUITE|FILE",
                      help="a built-in suite name (see `needbench list`) or a suite TOML file")
@@ -627,8 +672,12 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--max-retries", metavar="N", type=_non_negative, default=2,
                      help="reruns of a job whose worker process died or was lost (default: 2)")
     run.add_argument("--quiet", action="store_true",
-                     help="no progress line and no summary lines, only the results table "
-                     "(progress is also off when stdout is not a terminal)")
+                     help="no progress and no summary lines, only the results table (off a "
+                     f"terminal, progress is a plain line every {PROGRESS_LINE_SECONDS:g} s "
+                     "at most)")
+    run.add_argument("--verbose", action="store_true",
+                     help="list every agent-task pair that is not applicable, with what the "
+                     "agent needs")
     run.set_defaults(handler=command_run)
 
     results = commands.add_parser(
@@ -639,7 +688,9 @@ def build_parser() -> argparse.ArgumentParser:
                          help=f"a run's output folder, or a {STORE_NAME} file")
     output = results.add_mutually_exclusive_group()
     output.add_argument("--json", action="store_true", help="print the table as JSON")
-    output.add_argument("--csv", action="store_true", help="print the table as CSV")
+    output.add_argument("--csv", action="store_true",
+                        help="print the table as CSV: the aggregate, one row per task, agent "
+                        f"and sweep point (the per-run rows are in {CSV_NAME})")
     results.set_defaults(handler=command_results)
 
     watch = commands.add_parser(

@@ -84,7 +84,7 @@ def test_run_writes_store_csv_tensorboard_and_table(local_run, capsys):
         assert {(run["task_id"], run["agent"]) for run in runs} == {
             ("needbench/Menu-v0", "random"), ("needbench/Menu-v0", "tabular-q"),
             ("needbench/Arena-v0", "random")}
-    with (out / "results.csv").open(newline="") as handle:
+    with (out / "runs.csv").open(newline="") as handle:
         rows = list(csv.DictReader(handle))
     assert len(rows) == SUITE_JOBS and {"return", "discounted_drive", "survival"} <= set(rows[0])
     assert len(list((out / "tensorboard").iterdir())) == SUITE_JOBS
@@ -121,7 +121,13 @@ def test_rerun_skips_what_is_done(local_run, capsys):
     assert main(["run", str(suite), "--out", str(out)]) == 0
     printed = capsys.readouterr().out
     assert f"0 done now, {SUITE_JOBS} already done" in printed
-    assert "not applicable, not run: tabular-q on needbench/Arena-v0" in printed
+    assert f"{SUITE_JOBS} jobs already done in {out / 'results.sqlite3'} were not run again" \
+        in printed
+    assert "1 agent-task pair not applicable (the agent cannot act on that task), 4 jobs not " \
+        "run; --verbose lists them" in printed
+    assert main(["run", str(suite), "--out", str(out), "--verbose"]) == 0
+    printed = capsys.readouterr().out
+    assert "  tabular-q on Arena-v0: the agent needs a Discrete space" in printed
     after = {run["hash"]: run["finished"] for run in Store(out / "results.sqlite3").runs()}
     assert after == before
 
@@ -292,7 +298,8 @@ def test_version_and_help(capsys):
     assert capsys.readouterr().out.startswith("needbench ")
     assert main([]) == 0
     printed = capsys.readouterr().out
-    assert all(verb in printed for verb in ("list", "describe", "run", "results", "watch"))
+    assert all(verb in printed for verb in ("list", "describe", "run", "results", "watch",
+                                            "report", "compare", "drive"))
 
 
 def test_list_shows_every_task_agent_and_suite(capsys):
@@ -310,6 +317,18 @@ def test_describe_shows_the_needs_of_the_task(capsys):
         line = next(line for line in printed.splitlines() if line.strip().startswith(need.name))
         assert f"{need.set_point:g}" in line and f"{need.band:g}" in line and need.unit in line
     assert "time limit: 200 steps" in printed and "max_steps" in printed
+
+
+def test_describe_lists_everything_and_names_the_actions(capsys):
+    assert main(["describe", "ForageWide"]) == 0
+    printed = capsys.readouterr().out
+    world = gym.make("needbench/ForageWide-v0").unwrapped.core.world
+    assert len(world.feature_names) > 100
+    # Every feature name in full, none cut off with an ellipsis.
+    assert all(name in printed for name in world.feature_names) and "..." not in printed
+    assert "0 stay, 1 north, 2 east, 3 south, 4 west" in printed
+    assert main(["describe", "Shift"]) == 0
+    assert "0 rake salt" in capsys.readouterr().out
 
 
 def test_watch_shows_one_frame_per_step(capsys):
