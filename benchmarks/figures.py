@@ -37,7 +37,7 @@ PALETTE: tuple[tuple[str, str], ...] = (
     ("saffron", "#f0a030"),
     ("lagoon", "#1a9e8f"),
     ("brick", "#c8553d"),
-    ("heather", "#8560a8"),
+    ("heather", "#6b4a94"),
     ("cornflower", "#79b4e3"),
     ("moss", "#76823a"),
     ("graphite", "#4d4d4d"),

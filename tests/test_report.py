@@ -392,3 +392,25 @@ def test_page_in_headless_chromium(html_report, tmp_path):
     # Not blank: a good share of pixels is not the white page, and they vary.
     assert np.mean(pixels.min(axis=-1) < 0.9) > 0.02
     assert pixels.std() > 0.05
+
+
+def _relative_luminance(colour: str) -> float:
+    # Source: WCAG 2.1, definition of relative luminance (sRGB linearised, then
+    # 0.2126 R + 0.7152 G + 0.0722 B).
+    channels = np.array([int(colour[i:i + 2], 16) / 255 for i in (1, 3, 5)])
+    linear = np.where(channels <= 0.04045, channels / 12.92, ((channels + 0.055) / 1.055) ** 2.4)
+    return float(linear @ [0.2126, 0.7152, 0.0722])
+
+
+def test_palette_neighbours_differ_in_lightness_too():
+    colours = [colour for _, colour in figures.PALETTE]
+    assert len(set(colours)) == len(colours) == len({name for name, _ in figures.PALETTE})
+    luminance = [_relative_luminance(colour) for colour in colours]
+    # Common practice, no source: neighbours that differ in lightness stay apart in
+    # grey print and for readers who confuse hues.
+    assert min(abs(a - b) for a, b in zip(luminance, luminance[1:])) >= 0.05
+    # Against the white page every colour keeps a contrast ratio of 2 or more
+    # (WCAG 2.1 contrast ratio (L1 + 0.05) / (L2 + 0.05)).
+    assert all(1.05 / (value + 0.05) >= 2.0 for value in luminance)
+    styles = figures.agent_colours(["b", "a", "b", "c"])
+    assert list(styles) == ["b", "a", "c"] and len({s.colour for s in styles.values()}) == 3
