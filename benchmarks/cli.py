@@ -14,7 +14,6 @@ import importlib
 import importlib.resources
 import io
 import json
-import math
 import os
 import sys
 import time
@@ -46,10 +45,6 @@ TABLE_METRICS = (
 #: Seconds between progress lines when stdout is not a terminal (a log, nohup).
 PROGRESS_LINE_SECONDS = 10.0
 
-#: Bootstrap resamples behind each confidence interval of the results table.
-TABLE_REPETITIONS = 2000
-#: Seed of the bootstrap, so the same store always prints the same table.
-TABLE_SEED = 0
 
 
 def package_version() -> str:
@@ -154,19 +149,13 @@ class Cell:
     estimates: dict[str, tuple[float, float, float] | None]
 
 
-def _estimate(values: list[float], higher_is_better: bool) -> tuple[float, float, float] | None:
-    from needbench.benchmarks.stats import bootstrap_ci, interquartile_mean
+def _estimate(values: list[float], higher_is_better: bool
+              ) -> tuple[float, float | None, float | None] | None:
+    """(IQM, low, high) of the finite values; no interval (None, None) under 3 runs."""
+    from needbench.benchmarks.report import estimate
 
-    finite = [value for value in values if value is not None and math.isfinite(value)]
-    if not finite:
-        return None
-    sign = 1.0 if higher_is_better else -1.0
-    # The stats functions score higher-is-better; a cost is negated and turned back after.
-    estimate = bootstrap_ci(sign * np.asarray(finite), interquartile_mean,
-                            np.random.default_rng(TABLE_SEED), confidence=0.95,
-                            repetitions=TABLE_REPETITIONS)
-    bounds = sorted((sign * estimate.low, sign * estimate.high))
-    return sign * estimate.value, bounds[0], bounds[1]
+    result = estimate(values, higher_is_better)
+    return None if result is None else (result.value, result.low, result.high)
 
 
 def result_cells(store, hashes: Iterable[str] | None = None) -> list[Cell]:
@@ -193,37 +182,79 @@ def _sweep_text(sweep: str) -> str:
     return " ".join(f"{key}={json.dumps(value)}" for key, value in sorted(point.items()))
 
 
-def _number(value: float) -> str:
-    return f"{value:.3g}"
+def _estimate_text(estimate: tuple[float, float | None, float | None] | None,
+                   interval: bool) -> str:
+    from needbench.benchmarks.report import number
+
+    if estimate is None:
+        return "n/a"
+    if not interval or estimate[1] is None:
+        return number(estimate[0])
+    return f"{number(estimate[0])} [{number(estimate[1])}, {number(estimate[2])}]"
 
 
-def format_table(cells: Sequence[Cell]) -> str:
-    """The results table as aligned text: one row per cell, IQM [95% CI] per metric."""
-    if not cells:
-        return "no runs recorded"
+def _table_lines(cells: Sequence[Cell], interval: bool) -> list[str]:
     show_suite = len({cell.suite for cell in cells}) > 1
     show_sweep = any(cell.sweep not in ("", "{}") for cell in cells)
+    # Narrowed, the titles lose their suffix and the failed column goes when empty.
+    show_failed = interval or any(cell.failed for cell in cells)
+    suffix = " IQM [95% CI]" if interval else ""
     header = (["suite"] if show_suite else []) + ["task", "agent"] \
-        + (["sweep"] if show_sweep else []) + ["runs", "failed"] \
-        + [f"{title} IQM [95% CI]" for _, title, _ in TABLE_METRICS]
+        + (["sweep"] if show_sweep else []) + ["runs"] + (["failed"] if show_failed else []) \
+        + [f"{title}{suffix}" for _, title, _ in TABLE_METRICS]
     rows = []
     for cell in cells:
         row = ([cell.suite] if show_suite else []) + [cell.task_id.removeprefix("needbench/"),
                                                       cell.agent]
         row += [_sweep_text(cell.sweep)] if show_sweep else []
-        row += [str(cell.runs), str(cell.failed)]
-        for key, _, _ in TABLE_METRICS:
-            estimate = cell.estimates[key]
-            row.append("n/a" if estimate is None else
-                       f"{_number(estimate[0])} [{_number(estimate[1])}, {_number(estimate[2])}]")
+        row += [str(cell.runs)] + ([str(cell.failed)] if show_failed else [])
+        row += [_estimate_text(cell.estimates[key], interval) for key, _, _ in TABLE_METRICS]
         rows.append(row)
     widths = [max(len(line[i]) for line in [header, *rows]) for i in range(len(header))]
     lines = ["  ".join(text.ljust(width) for text, width in zip(line, widths, strict=True))
              .rstrip() for line in [header, *rows]]
     lines.insert(1, "  ".join("-" * width for width in widths))
-    lines.append("(discounted drive: lower is better; the others: higher is better. "
-                 "IQM over runs, each run the mean of its evaluation episodes.)")
-    return "\n".join(lines)
+    return lines
+
+
+def format_table(cells: Sequence[Cell], width: int | None = None) -> str:
+    """The results table as aligned text: one row per cell, IQM [95% CI] per metric.
+
+    Args:
+        width: the columns available (a terminal's width); when the table with
+            intervals is wider, it is printed with the IQMs only and a note.
+            None: never narrowed (``--wide``, or output that is not a terminal).
+    """
+    from needbench.benchmarks.report import MIN_RUNS_FOR_INTERVAL
+
+    if not cells:
+        return "no runs recorded"
+    lines = _table_lines(cells, interval=True)
+    notes = ["discounted drive: lower is better; the others: higher is better. IQM over runs, "
+             "each run the mean of its evaluation episodes; numbers to 3 significant digits."]
+    if width is not None and max(len(line) for line in lines) > width:
+        lines = _table_lines(cells, interval=False)
+        notes.append(f"Cells: the IQM; 95% intervals left out to fit {width} columns; --wide "
+                     "shows them.")
+    if any(0 < cell.runs < MIN_RUNS_FOR_INTERVAL for cell in cells):
+        notes.append(f"Cells with fewer than {MIN_RUNS_FOR_INTERVAL} runs show the IQM and no "
+                     "interval: a bootstrap over one or two runs says nothing about spread.")
+    if width is not None:
+        import textwrap
+
+        notes = [textwrap.fill(f"({note})", width=max(40, width - 1)) for note in notes]
+    else:
+        notes = [f"({note})" for note in notes]
+    return "\n".join(lines + notes)
+
+
+def table_width(wide: bool) -> int | None:
+    """The width the results table must fit: the terminal's, or None (no limit)."""
+    import shutil
+
+    if wide or not sys.stdout.isatty():
+        return None
+    return shutil.get_terminal_size((100, 20)).columns
 
 
 def _cell_record(cell: Cell) -> dict[str, Any]:
@@ -434,7 +465,7 @@ def command_run(args: argparse.Namespace) -> int:
                 print(f"{len(summary.skipped)} jobs already done in {out / STORE_NAME} were "
                       "not run again (another --out starts afresh)")
             _print_not_applicable(summary, args.verbose)
-        print(format_table(result_cells(store, hashes)))
+        print(format_table(result_cells(store, hashes), table_width(args.wide)))
     for run in failed:
         last = (run["error"] or "").strip().splitlines()[-1:] or [""]
         print(f"failed: {run['task_id']} {run['agent']} seed={run['seed']}: {last[0]}",
@@ -473,7 +504,7 @@ def command_results(args: argparse.Namespace) -> int:
     elif args.csv:
         sys.stdout.write(table_csv(cells))
     else:
-        print(format_table(cells))
+        print(format_table(cells, table_width(args.wide)))
     return 0
 
 
@@ -675,6 +706,9 @@ def build_parser() -> argparse.ArgumentParser:
                      help="no progress and no summary lines, only the results table (off a "
                      f"terminal, progress is a plain line every {PROGRESS_LINE_SECONDS:g} s "
                      "at most)")
+    run.add_argument("--wide", action="store_true",
+                     help="print the results table with its intervals even when it is wider "
+                     "than the terminal")
     run.add_argument("--verbose", action="store_true",
                      help="list every agent-task pair that is not applicable, with what the "
                      "agent needs")
@@ -691,6 +725,9 @@ def build_parser() -> argparse.ArgumentParser:
     output.add_argument("--csv", action="store_true",
                         help="print the table as CSV: the aggregate, one row per task, agent "
                         f"and sweep point (the per-run rows are in {CSV_NAME})")
+    results.add_argument("--wide", action="store_true",
+                         help="keep the intervals even when the table is wider than the "
+                         "terminal")
     results.set_defaults(handler=command_results)
 
     watch = commands.add_parser(

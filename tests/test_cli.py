@@ -20,7 +20,7 @@ from scipy import stats
 
 import needbench.envs
 from needbench.agents.registry import AGENTS
-from needbench.benchmarks.cli import builtin_suites, load_suite, main
+from needbench.benchmarks.cli import Cell, builtin_suites, format_table, load_suite, main
 from needbench.benchmarks.runner import run_suite
 from needbench.benchmarks.spec import expand, parse_suite
 from needbench.benchmarks.store import Store
@@ -351,3 +351,27 @@ def test_builtin_suites_fit_the_registries():
                                                               "needbench/Forage-v0"}
     labels = {sweep.label for sweep in suites["tradeoff"].sweeps}
     assert "task.task_weight" in labels and any("gamma" in label for label in labels)
+
+
+def _cells(runs: int) -> list[Cell]:
+    estimate = (1.25, None, None) if runs < 3 else (1.25, 0.5, 2.0)
+    return [Cell("s", "needbench/Menu-v0", agent, "{}", runs, 0,
+                 {"return": estimate, "discounted_drive": estimate, "time_in_band": estimate,
+                  "survival": estimate}) for agent in ("random", "tabular-q")]
+
+
+def test_results_table_narrows_to_the_terminal_or_stays_wide():
+    wide = format_table(_cells(4))
+    assert "return IQM [95% CI]" in wide and "1.25 [0.5, 2]" in wide
+    assert "left out" not in wide
+    narrow = format_table(_cells(4), width=80)
+    assert "1.25 [0.5, 2]" not in narrow and "return" in narrow
+    assert "95% intervals left out to fit 80 columns; --wide shows them." in " ".join(
+        narrow.split())
+    assert max(len(line) for line in narrow.splitlines()) <= 80
+
+
+def test_results_table_shows_no_interval_under_three_runs():
+    table = format_table(_cells(2))
+    assert "[" not in table.split("\n", 2)[2].split("(")[0]
+    assert "fewer than 3 runs show the IQM and no interval" in table
