@@ -126,7 +126,8 @@ def compare(store, first: str, second: str, metric: str = "return") -> Compariso
     title, higher = COMPARABLE[metric]
     sign = 1.0 if higher else -1.0
     pairs = []
-    for task in task_results(store):
+    tasks = task_results(store)
+    for task in tasks:
         by_label = {}
         for series in task.series:
             if series.agent in (first, second):
@@ -138,7 +139,7 @@ def compare(store, first: str, second: str, metric: str = "return") -> Compariso
             x, y = _scores(both[first], metric), _scores(both[second], metric)
             if x.size and y.size:
                 pairs.append((f"{task.name} {sweep}".strip(), x, y))
-    agents_seen = {s.agent for task in task_results(store) for s in task.series}
+    agents_seen = {s.agent for task in tasks for s in task.series}
     for name in (first, second):
         if name not in agents_seen:
             raise ConfigError("agents", name, "an agent with runs in this store: "
