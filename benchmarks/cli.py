@@ -46,7 +46,6 @@ TABLE_METRICS = (
 PROGRESS_LINE_SECONDS = 10.0
 
 
-
 def package_version() -> str:
     try:
         return version("needbench")
@@ -657,6 +656,8 @@ _non_negative = _whole_number(0)
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from needbench.benchmarks.compare import COMPARABLE
+
     parser = argparse.ArgumentParser(
         prog="needbench",
         description="Benchmark agents that keep several internal needs near their set points.",
@@ -749,7 +750,7 @@ def build_parser() -> argparse.ArgumentParser:
     report = commands.add_parser(
         "report", help="write an HTML or Markdown report with figures of a run",
         description="Write a report of a results store: the run's facts, one table per task "
-        "(IQM and 95%% CI of every metric), and figures (internal-state traces, stability "
+        "(IQM and 95% CI of every metric), and figures (internal-state traces, stability "
         "against return, learning curves, deviation per need, the drive landscape), every "
         "figure also as a PNG file. The HTML page embeds its figures and opens with no "
         "network.")
@@ -768,7 +769,7 @@ def build_parser() -> argparse.ArgumentParser:
         "compare", help="compare two agents: probability of improvement, IQM difference",
         description="Compare two agents of a results store on one metric, per task and over "
         "all tasks both ran: the probability that a run of the first beats a run of the "
-        "second, and the difference of their IQMs, each with a 95%% bootstrap CI "
+        "second, and the difference of their IQMs, each with a 95% bootstrap CI "
         "(Agarwal et al. 2021). Prints a table and writes comparison.json and "
         "comparison.png.")
     comparing.add_argument("location", metavar="DIR",
@@ -776,9 +777,7 @@ def build_parser() -> argparse.ArgumentParser:
     comparing.add_argument("--agents", nargs=2, metavar=("A", "B"), required=True,
                            help="the two agents, A compared against B")
     comparing.add_argument("--metric", default="return",
-                           choices=("return", "extrinsic_return", "discounted_drive",
-                                    "normalised_discounted_drive", "discounted_deviation",
-                                    "time_in_band", "survival", "overconsumption"),
+                           choices=tuple(COMPARABLE),
                            help="the metric compared (default: return)")
     comparing.add_argument("--out", metavar="DIR", default=None,
                            help="folder of comparison.json and comparison.png (default: "
@@ -794,8 +793,8 @@ def build_parser() -> argparse.ArgumentParser:
         "internal states, as a PNG.")
     drive.add_argument("--m", type=float, default=2.0, help="the root m (default: 2)")
     drive.add_argument("--n", type=float, default=3.0, help="the exponent n (default: 3)")
-    drive.add_argument("--preset", choices=("abstract", "mammal"), default="abstract",
-                       help="the preset whose needs are drawn (default: abstract)")
+    drive.add_argument("--preset", metavar="NAME", default="abstract",
+                       help="the preset whose needs are drawn: abstract (default) or mammal")
     drive.add_argument("--needs", nargs=2, metavar=("NEED", "NEED"), default=None,
                        help="the two needs drawn (default: the preset's first two)")
     drive.add_argument("--outcome", type=float, default=1.0,
