@@ -289,6 +289,12 @@ def table_csv(cells: Sequence[Cell]) -> str:
     return buffer.getvalue()
 
 
+def _run_folder(location: str) -> Path:
+    """The folder of a run: the location itself, or the folder of a store file."""
+    path = Path(location)
+    return path if path.is_dir() else path.parent
+
+
 def _open_store(location: str):
     """The store in a run's output folder, or a store file itself; never creates one."""
     from needbench.benchmarks.store import Store
@@ -572,9 +578,7 @@ def command_report(args: argparse.Namespace) -> int:
     _require_plots()
     from needbench.benchmarks.report import build_report
 
-    out = Path(args.out) if args.out else Path(args.location if Path(args.location).is_dir()
-                                               else Path(args.location).parent) \
-        / f"report.{args.format}"
+    out = Path(args.out) if args.out else _run_folder(args.location) / f"report.{args.format}"
     with _open_store(args.location) as store:
         report = build_report(store, out, format=args.format, suite=args.suite)
     folder = report.figures[0].path.parent if report.figures else None
@@ -598,8 +602,8 @@ def command_compare(args: argparse.Namespace) -> int:
         print(comparison.to_json())
     else:
         print(format_comparison(comparison))
-    base = Path(args.location) if Path(args.location).is_dir() else Path(args.location).parent
-    out = Path(args.out) if args.out else base / f"compare-{first}-{second}-{args.metric}"
+    out = Path(args.out) if args.out else \
+        _run_folder(args.location) / f"compare-{first}-{second}-{args.metric}"
     out.mkdir(parents=True, exist_ok=True)
     (out / "comparison.json").write_text(comparison.to_json() + "\n", encoding="utf-8")
     save_png(comparison_figure(comparison, agents), out / "comparison.png")
@@ -653,6 +657,12 @@ def _whole_number(minimum: int):
 
 _positive = _whole_number(1)
 _non_negative = _whole_number(0)
+
+
+def _add_location(parser: argparse.ArgumentParser) -> None:
+    """The DIR argument of the verbs that read a results store."""
+    parser.add_argument("location", metavar="DIR",
+                        help=f"a run's output folder, or a {STORE_NAME} file")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -719,8 +729,7 @@ def build_parser() -> argparse.ArgumentParser:
         "results", help="print the results table of a store",
         description="Print the results table (IQM and 95% bootstrap CI of return, "
         "discounted drive, time in band and survival per agent and task) of a results store.")
-    results.add_argument("location", metavar="DIR",
-                         help=f"a run's output folder, or a {STORE_NAME} file")
+    _add_location(results)
     output = results.add_mutually_exclusive_group()
     output.add_argument("--json", action="store_true", help="print the table as JSON")
     output.add_argument("--csv", action="store_true",
@@ -754,8 +763,7 @@ def build_parser() -> argparse.ArgumentParser:
         "against return, learning curves, deviation per need, the drive landscape), every "
         "figure also as a PNG file. The HTML page embeds its figures and opens with no "
         "network.")
-    report.add_argument("location", metavar="DIR",
-                        help=f"a run's output folder, or a {STORE_NAME} file")
+    _add_location(report)
     report.add_argument("--out", metavar="FILE", default=None,
                         help="the page to write (default: DIR/report.html or DIR/report.md); "
                         "figures go to <FILE stem>-figures/ beside it")
@@ -772,8 +780,7 @@ def build_parser() -> argparse.ArgumentParser:
         "second, and the difference of their IQMs, each with a 95% bootstrap CI "
         "(Agarwal et al. 2021). Prints a table and writes comparison.json and "
         "comparison.png.")
-    comparing.add_argument("location", metavar="DIR",
-                           help=f"a run's output folder, or a {STORE_NAME} file")
+    _add_location(comparing)
     comparing.add_argument("--agents", nargs=2, metavar=("A", "B"), required=True,
                            help="the two agents, A compared against B")
     comparing.add_argument("--metric", default="return",
