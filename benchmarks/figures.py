@@ -51,7 +51,8 @@ LETHAL_COLOUR = "#7a1f1f"
 #: Markers of task events in the trace figure, cycled by event name.
 EVENT_MARKERS = ("|", "v", "^", "x", "d", "+", "1", "*")
 #: Line styles of the sweep points of one agent, in turn.
-LINE_STYLES = ("-", "--", "-.", ":")
+LINE_STYLES = ("-", "--", "-.", ":", (0, (6, 2, 1, 2, 1, 2)), (0, (1, 4)), (0, (8, 3)),
+               (0, (3, 1, 3, 1, 1, 1)))
 
 #: Size of every figure: inches at :data:`DPI` dots per inch.
 FIGURE_SIZE = (10.0, 6.0)
@@ -314,6 +315,8 @@ def tradeoff_figure(task: str, points: Sequence[Point], styles: Mapping[str, Sty
     figure, axes = new_figure()
     axis = axes[0, 0]
     seen: set[str] = set()
+    # Sweep points of one agent that land on the same spot share one label.
+    labels: dict[tuple[str, float, float], list[str]] = {}
     for point in points:
         style = styles[point.agent]
         x, y = point.x, point.y
@@ -323,9 +326,11 @@ def tradeoff_figure(task: str, points: Sequence[Point], styles: Mapping[str, Sty
                       label=point.agent if point.agent not in seen else None)
         seen.add(point.agent)
         if point.label != point.agent:
-            axis.annotate(point.label.removeprefix(point.agent).strip(), (x[0], y[0]),
-                          textcoords="offset points", xytext=(6, 6), fontsize=7,
-                          color=style.colour)
+            spot = (point.agent, float(f"{x[0]:.3g}"), float(f"{y[0]:.3g}"))
+            labels.setdefault(spot, []).append(point.label.removeprefix(point.agent).strip())
+    for (agent, x_value, y_value), texts in labels.items():
+        axis.annotate("\n".join(texts), (x_value, y_value), textcoords="offset points",
+                      xytext=(6, 6), fontsize=7, color=styles[agent].colour)
     front = pareto_front([(point.x[0], point.y[0]) for point in points])
     if front:
         axis.plot([points[i].x[0] for i in front], [points[i].y[0] for i in front],
@@ -365,12 +370,14 @@ def learning_figure(task: str, panels: Sequence[tuple[str, Sequence[Curve]]],
         repeats: dict[str, int] = {}
         for curve in curves:
             style = styles[curve.agent]
-            # Sweep points of one agent share its colour and differ in line style.
-            dash = LINE_STYLES[repeats.get(curve.agent, 0) % len(LINE_STYLES)]
-            repeats[curve.agent] = repeats.get(curve.agent, 0) + 1
+            # Sweep points of one agent share its colour and differ in line style and marker.
+            repeat = repeats.get(curve.agent, 0)
+            repeats[curve.agent] = repeat + 1
             shown = np.isfinite(curve.centre)
             axis.plot(curve.steps[shown], curve.centre[shown], color=style.colour,
-                      linewidth=1.6, linestyle=dash, label=f"{curve.label} ({curve.runs} runs)")
+                      linewidth=1.6, linestyle=LINE_STYLES[repeat % len(LINE_STYLES)],
+                      marker=MARKERS[repeat % len(MARKERS)], markevery=max(1, shown.sum() // 6),
+                      markersize=5, label=f"{curve.label} ({curve.runs} runs)")
             band = np.isfinite(curve.low)
             if np.any(band):
                 axis.fill_between(curve.steps[band], curve.low[band], curve.high[band],
