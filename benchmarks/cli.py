@@ -715,8 +715,7 @@ def build_parser() -> argparse.ArgumentParser:
                      help="reruns of a job whose worker process died or was lost (default: 2)")
     run.add_argument("--quiet", action="store_true",
                      help="no progress and no summary lines, only the results table (off a "
-                     f"terminal, progress is a plain line every {PROGRESS_LINE_SECONDS:g} s "
-                     "at most)")
+                     f"terminal, progress is a plain line every {PROGRESS_LINE_SECONDS:g} s)")
     run.add_argument("--wide", action="store_true",
                      help="print the results table with its intervals even when it is wider "
                      "than the terminal")

@@ -287,7 +287,8 @@ def _drain(queue: Any, into: set[str]) -> None:
 
 
 def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_retries: int,
-               job_function: JobFunction, on_result: ResultSink) -> None:
+               job_function: JobFunction, on_result: ResultSink,
+               on_idle: Callable[[], None] = lambda: None) -> None:
     """Run jobs in a spawn-context process pool; survive worker deaths.
 
     When a worker process dies (a crash in native code, the out-of-memory
@@ -321,6 +322,7 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
                     # otherwise fill and block the workers.
                     ready, waiting = wait(waiting, timeout=0.5, return_when=FIRST_COMPLETED)
                     _drain(started_jobs, started)
+                    on_idle()
                     for future in ready:
                         job = futures[future]
                         try:
@@ -365,7 +367,7 @@ def import_ray() -> Any:
 
 def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: str | None,
              max_retries: int, job_function: JobFunction,
-             on_result: ResultSink) -> None:
+             on_result: ResultSink, on_idle: Callable[[], None] = lambda: None) -> None:
     ray = import_ray()
     owned = not ray.is_initialized()
     if owned:
@@ -384,7 +386,8 @@ def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: 
         by_reference = {remote.remote(job.config, job.hash, settings): job for job in jobs}
         pending = list(by_reference)
         while pending:
-            ready, pending = ray.wait(pending, num_returns=1)
+            ready, pending = ray.wait(pending, num_returns=1, timeout=1.0)
+            on_idle()
             for reference in ready:
                 job = by_reference[reference]
                 try:
@@ -418,8 +421,9 @@ class Progress:
     Silent unless ``enabled`` (the command line enables it unless ``--quiet``).
     On a terminal (``every=None``) it is one self-rewriting status line. Off a
     terminal (batch systems, ``nohup``, a log file) give ``every`` in seconds:
-    then a plain line is printed when a job finishes, at most once per
-    ``every`` seconds, and once at the end. The ETA assumes the remaining jobs
+    then a plain line is printed every ``every`` seconds (the backends call
+    :meth:`tick` while they wait, so long jobs still show signs of life), and
+    once at the end. The ETA assumes the remaining jobs
     take as long on average as the finished ones.
     """
 
@@ -457,7 +461,13 @@ class Progress:
             self._write(f"failed: {Job(result.config).describe()}: {last[0]}", final=True)
         if self.every is None:
             self._write(self.line(), final=False)
-        elif time.perf_counter() - self._last_line >= self.every:
+        else:
+            self.tick()
+
+    def tick(self) -> None:
+        """Off a terminal: a plain progress line when ``every`` seconds have passed."""
+        if self.enabled and self.every is not None \
+                and time.perf_counter() - self._last_line >= self.every:
             self._write_periodic()
 
     def _finished(self) -> int:
@@ -470,7 +480,7 @@ class Progress:
         self.stream.flush()
 
     def line(self) -> str:
-        finished = self.done + self.failed + self.not_applicable
+        finished = self._finished()
         elapsed = time.perf_counter() - self.start
         left = self.total - finished
         eta = _duration(elapsed / finished * left) if finished else "?"
@@ -638,9 +648,11 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
     progress.begin()
     try:
         if pending and backend == "local":
-            _run_local(pending, settings, workers, max_retries, job_function, record)
+            _run_local(pending, settings, workers, max_retries, job_function, record,
+                       progress.tick)
         elif pending:
-            _run_ray(pending, settings, workers, address, max_retries, job_function, record)
+            _run_ray(pending, settings, workers, address, max_retries, job_function, record,
+                     progress.tick)
     finally:
         progress.close()
         summary.wall_seconds = time.perf_counter() - clock
