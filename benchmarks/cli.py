@@ -1,4 +1,5 @@
-"""The ``needbench`` command line: list, describe, run, results, watch.
+"""The ``needbench`` command line: list, describe, run, results, watch, report,
+compare, drive.
 
 Exit codes: 0 success; 1 some jobs of a run failed (their tracebacks are in
 the store); 2 bad input (unknown task, agent or suite, an invalid suite file,
@@ -13,7 +14,6 @@ import importlib
 import importlib.resources
 import io
 import json
-import math
 import os
 import sys
 import time
@@ -29,7 +29,9 @@ from needbench.envs.errors import ConfigError
 
 #: File names inside a run's output folder.
 STORE_NAME = "results.sqlite3"
-CSV_NAME = "results.csv"
+#: One row per run (its identity and mean metrics); the aggregate table is
+#: `needbench results DIR --csv`.
+CSV_NAME = "runs.csv"
 TENSORBOARD_NAME = "tensorboard"
 
 #: The results table: (metric key of a run summary, column title, higher is better).
@@ -40,10 +42,8 @@ TABLE_METRICS = (
     ("survival", "survival", True),
 )
 
-#: Bootstrap resamples behind each confidence interval of the results table.
-TABLE_REPETITIONS = 2000
-#: Seed of the bootstrap, so the same store always prints the same table.
-TABLE_SEED = 0
+#: Seconds between progress lines when stdout is not a terminal (a log, nohup).
+PROGRESS_LINE_SECONDS = 10.0
 
 
 def package_version() -> str:
@@ -148,19 +148,13 @@ class Cell:
     estimates: dict[str, tuple[float, float, float] | None]
 
 
-def _estimate(values: list[float], higher_is_better: bool) -> tuple[float, float, float] | None:
-    from needbench.benchmarks.stats import bootstrap_ci, interquartile_mean
+def _estimate(values: list[float], higher_is_better: bool
+              ) -> tuple[float, float | None, float | None] | None:
+    """(IQM, low, high) of the finite values; no interval (None, None) under 3 runs."""
+    from needbench.benchmarks.report import estimate
 
-    finite = [value for value in values if value is not None and math.isfinite(value)]
-    if not finite:
-        return None
-    sign = 1.0 if higher_is_better else -1.0
-    # The stats functions score higher-is-better; a cost is negated and turned back after.
-    estimate = bootstrap_ci(sign * np.asarray(finite), interquartile_mean,
-                            np.random.default_rng(TABLE_SEED), confidence=0.95,
-                            repetitions=TABLE_REPETITIONS)
-    bounds = sorted((sign * estimate.low, sign * estimate.high))
-    return sign * estimate.value, bounds[0], bounds[1]
+    result = estimate(values, higher_is_better)
+    return None if result is None else (result.value, result.low, result.high)
 
 
 def result_cells(store, hashes: Iterable[str] | None = None) -> list[Cell]:
@@ -187,37 +181,79 @@ def _sweep_text(sweep: str) -> str:
     return " ".join(f"{key}={json.dumps(value)}" for key, value in sorted(point.items()))
 
 
-def _number(value: float) -> str:
-    return f"{value:.3g}"
+def _estimate_text(estimate: tuple[float, float | None, float | None] | None,
+                   interval: bool) -> str:
+    from needbench.benchmarks.report import number
+
+    if estimate is None:
+        return "n/a"
+    if not interval or estimate[1] is None:
+        return number(estimate[0])
+    return f"{number(estimate[0])} [{number(estimate[1])}, {number(estimate[2])}]"
 
 
-def format_table(cells: Sequence[Cell]) -> str:
-    """The results table as aligned text: one row per cell, IQM [95% CI] per metric."""
-    if not cells:
-        return "no runs recorded"
+def _table_lines(cells: Sequence[Cell], interval: bool) -> list[str]:
     show_suite = len({cell.suite for cell in cells}) > 1
     show_sweep = any(cell.sweep not in ("", "{}") for cell in cells)
+    # Narrowed, the titles lose their suffix and the failed column goes when empty.
+    show_failed = interval or any(cell.failed for cell in cells)
+    suffix = " IQM [95% CI]" if interval else ""
     header = (["suite"] if show_suite else []) + ["task", "agent"] \
-        + (["sweep"] if show_sweep else []) + ["runs", "failed"] \
-        + [f"{title} IQM [95% CI]" for _, title, _ in TABLE_METRICS]
+        + (["sweep"] if show_sweep else []) + ["runs"] + (["failed"] if show_failed else []) \
+        + [f"{title}{suffix}" for _, title, _ in TABLE_METRICS]
     rows = []
     for cell in cells:
         row = ([cell.suite] if show_suite else []) + [cell.task_id.removeprefix("needbench/"),
                                                       cell.agent]
         row += [_sweep_text(cell.sweep)] if show_sweep else []
-        row += [str(cell.runs), str(cell.failed)]
-        for key, _, _ in TABLE_METRICS:
-            estimate = cell.estimates[key]
-            row.append("n/a" if estimate is None else
-                       f"{_number(estimate[0])} [{_number(estimate[1])}, {_number(estimate[2])}]")
+        row += [str(cell.runs)] + ([str(cell.failed)] if show_failed else [])
+        row += [_estimate_text(cell.estimates[key], interval) for key, _, _ in TABLE_METRICS]
         rows.append(row)
     widths = [max(len(line[i]) for line in [header, *rows]) for i in range(len(header))]
     lines = ["  ".join(text.ljust(width) for text, width in zip(line, widths, strict=True))
              .rstrip() for line in [header, *rows]]
     lines.insert(1, "  ".join("-" * width for width in widths))
-    lines.append("(discounted drive: lower is better; the others: higher is better. "
-                 "IQM over runs, each run the mean of its evaluation episodes.)")
-    return "\n".join(lines)
+    return lines
+
+
+def format_table(cells: Sequence[Cell], width: int | None = None) -> str:
+    """The results table as aligned text: one row per cell, IQM [95% CI] per metric.
+
+    Args:
+        width: the columns available (a terminal's width); when the table with
+            intervals is wider, it is printed with the IQMs only and a note.
+            None: never narrowed (``--wide``, or output that is not a terminal).
+    """
+    from needbench.benchmarks.report import MIN_RUNS_FOR_INTERVAL
+
+    if not cells:
+        return "no runs recorded"
+    lines = _table_lines(cells, interval=True)
+    notes = ["discounted drive: lower is better; the others: higher is better. IQM over runs, "
+             "each run the mean of its evaluation episodes; numbers to 3 significant digits."]
+    if width is not None and max(len(line) for line in lines) > width:
+        lines = _table_lines(cells, interval=False)
+        notes.append(f"Cells: the IQM; 95% intervals left out to fit {width} columns; --wide "
+                     "shows them.")
+    if any(0 < cell.runs < MIN_RUNS_FOR_INTERVAL for cell in cells):
+        notes.append(f"Cells with fewer than {MIN_RUNS_FOR_INTERVAL} runs show the IQM and no "
+                     "interval: a bootstrap over one or two runs says nothing about spread.")
+    if width is not None:
+        import textwrap
+
+        notes = [textwrap.fill(f"({note})", width=max(40, width - 1)) for note in notes]
+    else:
+        notes = [f"({note})" for note in notes]
+    return "\n".join(lines + notes)
+
+
+def table_width(wide: bool) -> int | None:
+    """The width the results table must fit: the terminal's, or None (no limit)."""
+    import shutil
+
+    if wide or not sys.stdout.isatty():
+        return None
+    return shutil.get_terminal_size((100, 20)).columns
 
 
 def _cell_record(cell: Cell) -> dict[str, Any]:
@@ -251,6 +287,12 @@ def table_csv(cells: Sequence[Cell]) -> str:
             row += ["", "", ""] if estimate is None else list(estimate)
         writer.writerow(row)
     return buffer.getvalue()
+
+
+def _run_folder(location: str) -> Path:
+    """The folder of a run: the location itself, or the folder of a store file."""
+    path = Path(location)
+    return path if path.is_dir() else path.parent
 
 
 def _open_store(location: str):
@@ -301,17 +343,30 @@ def command_list(args: argparse.Namespace) -> int:
     return 0
 
 
-def _format_value(value: Any, limit: int = 70) -> str:
-    text = repr(value)
-    return text if len(text) <= limit else text[:limit - 3] + "..."
-
-
 def _space_text(space: Any) -> str:
     from gymnasium import spaces
 
     if isinstance(space, spaces.Box) and int(np.prod(space.shape)) > 8:
         return f"Box(shape={space.shape}, dtype={space.dtype})"
     return str(space)
+
+
+def docstring_section(text: str | None, title: str) -> str:
+    """The body of a ``## title`` section of a Gymnasium-style class docstring, dedented."""
+    import textwrap
+
+    lines = textwrap.dedent("\n".join((text or "").splitlines()[1:])).splitlines()
+    body: list[str] = []
+    inside = False
+    for line in lines:
+        if line.strip().startswith("## "):
+            if inside:
+                break
+            inside = line.strip()[3:].strip().lower() == title.lower()
+            continue
+        if inside:
+            body.append(line)
+    return "\n".join(body).strip()
 
 
 def command_describe(args: argparse.Namespace) -> int:
@@ -337,9 +392,16 @@ def command_describe(args: argparse.Namespace) -> int:
             print(f"  entries 0..{internal - 1}: deviations (h - h*) / band of "
                   + ", ".join(core.need_names) + ", in comfort-band units")
         if features:
-            shown = ", ".join(features[:8]) + (", ..." if len(features) > 8 else "")
-            print(f"  then {len(features)} world features: {shown}")
+            import textwrap
+
+            print(f"  entries {internal}..{internal + len(features) - 1}: {len(features)} "
+                  "world features, in order:")
+            print(textwrap.fill(", ".join(features), width=96, initial_indent="    ",
+                                subsequent_indent="    ", break_on_hyphens=False))
         print(f"action space: {env.action_space}")
+        actions = docstring_section(env_class.__doc__, "Action Space").replace("``", "")
+        if actions:
+            print("  " + actions.replace("\n", "\n  "))
         print(f"time limit: {core.max_steps} steps; on lethal levels: {config.on_lethal}")
         print(f"drive: {config.drive} {dict(config.drive_params) or ''}".rstrip())
         print(f"reward: {config.reward} (drive_weight {config.drive_weight}, "
@@ -363,7 +425,7 @@ def command_describe(args: argparse.Namespace) -> int:
         print("\ndefaults (keyword arguments of gymnasium.make / [task.kwargs])")
         width = max(len(key) for key in defaults)
         for key, value in defaults.items():
-            print(f"  {key:<{width}}  {_format_value(value)}")
+            print(f"  {key:<{width}}  {value!r}")
     finally:
         env.close()
     return 0
@@ -389,11 +451,12 @@ def command_run(args: argparse.Namespace) -> int:
         tensorboard = None
     settings = RunSettings(tensorboard_root=None if tensorboard is None else str(tensorboard),
                            keep_traces=args.traces, git_revision=git_revision())
-    show_progress = not args.quiet and sys.stdout.isatty()
     with Store(out / STORE_NAME) as store:
         summary = run_suite(suite, store, workers=args.workers, backend=args.backend,
                             address=args.address, settings=settings,
-                            max_retries=args.max_retries, progress=show_progress)
+                            max_retries=args.max_retries, progress=not args.quiet,
+                            progress_every=None if sys.stdout.isatty()
+                            else PROGRESS_LINE_SECONDS)
         hashes = [job.hash for job in summary.jobs]
         failed = [run for run in store.runs(suite=suite.name, status="failed")
                   if run["hash"] in set(hashes)]
@@ -403,21 +466,39 @@ def command_run(args: argparse.Namespace) -> int:
                   f"{len(summary.skipped)} already done, {len(summary.failed)} failed now, "
                   f"{len(summary.not_applicable)} not applicable "
                   f"({summary.wall_seconds:.1f} s)")
-            reasons: dict[tuple[str, str], str] = {}
-            for job, reason in summary.not_applicable:
-                reasons.setdefault((job.task_id, job.agent_name), reason)
-            for (task_id, agent), reason in reasons.items():
-                print(f"not applicable, not run: {agent} on {task_id}: {reason}")
-        print(format_table(result_cells(store, hashes)))
+            if summary.skipped:
+                print(f"{len(summary.skipped)} jobs already done in {out / STORE_NAME} were "
+                      "not run again (another --out starts afresh)")
+            _print_not_applicable(summary, args.verbose)
+        print(format_table(result_cells(store, hashes), table_width(args.wide)))
     for run in failed:
         last = (run["error"] or "").strip().splitlines()[-1:] or [""]
         print(f"failed: {run['task_id']} {run['agent']} seed={run['seed']}: {last[0]}",
               file=sys.stderr)
     if not args.quiet:
-        print(f"results: {out / STORE_NAME}, {out / CSV_NAME}")
+        print(f"results store: {out / STORE_NAME}; one row per run: {out / CSV_NAME}; "
+              f"the table above as CSV: needbench results {out} --csv")
         if tensorboard is not None:
             print(f"tensorboard: tensorboard --logdir {tensorboard}")
     return 1 if failed else 0
+
+
+def _print_not_applicable(summary, verbose: bool) -> None:
+    """One line for the pairs an agent does not handle; with ``verbose``, one line each."""
+    pairs: dict[tuple[str, str], str] = {}
+    for job, _ in summary.not_applicable:
+        pairs.setdefault((job.agent_name, job.task_id), summary.needs.get(job.hash, ""))
+    if not pairs:
+        return
+    count = f"{len(pairs)} agent-task pair{'s' if len(pairs) != 1 else ''} not applicable"
+    jobs = len(summary.not_applicable)
+    jobs_text = f"{jobs} job{'s' if jobs != 1 else ''} not run"
+    if not verbose:
+        print(f"{count} (the agent cannot act on that task), {jobs_text}; --verbose lists them")
+        return
+    print(f"{count}, {jobs_text}:")
+    for (agent, task_id), needs in sorted(pairs.items()):
+        print(f"  {agent} on {task_id.removeprefix('needbench/')}: the agent needs {needs}")
 
 
 def command_results(args: argparse.Namespace) -> int:
@@ -428,7 +509,7 @@ def command_results(args: argparse.Namespace) -> int:
     elif args.csv:
         sys.stdout.write(table_csv(cells))
     else:
-        print(format_table(cells))
+        print(format_table(cells, table_width(args.wide)))
     return 0
 
 
@@ -484,6 +565,77 @@ def command_watch(args: argparse.Namespace) -> int:
     return 0
 
 
+def _require_plots() -> None:
+    """ConfigError saying how to install matplotlib, for the verbs that draw."""
+    try:
+        importlib.import_module("matplotlib")
+    except ImportError as error:
+        raise ConfigError("plots", "matplotlib", "an installed matplotlib "
+                          "(pip install 'needbench[plots]')") from error
+
+
+def command_report(args: argparse.Namespace) -> int:
+    _require_plots()
+    from needbench.benchmarks.report import build_report
+
+    out = Path(args.out) if args.out else _run_folder(args.location) / f"report.{args.format}"
+    with _open_store(args.location) as store:
+        report = build_report(store, out, format=args.format, suite=args.suite)
+    folder = report.figures[0].path.parent if report.figures else None
+    print(f"report: {report.path} ({len(report.sections) - 1} sections after the run facts, "
+          f"{len(report.figures)} figures)")
+    if folder is not None:
+        print(f"figures: {folder}/ (PNG)")
+    return 0
+
+
+def command_compare(args: argparse.Namespace) -> int:
+    _require_plots()
+    from needbench.benchmarks.compare import compare, comparison_figure, format_comparison
+    from needbench.benchmarks.figures import save_png
+
+    first, second = args.agents
+    with _open_store(args.location) as store:
+        comparison = compare(store, first, second, args.metric)
+        agents = sorted({run["agent"] for run in store.runs(status="done")})
+    if args.json:
+        print(comparison.to_json())
+    else:
+        print(format_comparison(comparison))
+    out = Path(args.out) if args.out else \
+        _run_folder(args.location) / f"compare-{first}-{second}-{args.metric}"
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "comparison.json").write_text(comparison.to_json() + "\n", encoding="utf-8")
+    save_png(comparison_figure(comparison, agents), out / "comparison.png")
+    if not args.json:
+        print(f"\nwritten: {out / 'comparison.json'}, {out / 'comparison.png'}")
+    return 0
+
+
+def command_drive(args: argparse.Namespace) -> int:
+    _require_plots()
+    from needbench.benchmarks.figures import drive_figure, save_png
+    from needbench.envs import make_drive, preset
+
+    body = preset(args.preset)
+    names = args.needs or list(body.needs)[:2]
+    for name in names:
+        if name not in body.needs:
+            raise ConfigError("needs", name, f"needs of the {args.preset} preset: "
+                              + ", ".join(body.needs))
+    needs = [body.needs[name] for name in names]
+    band = [need.band for need in needs]
+    # Deviations count in comfort-band units, as the tasks' drives do.
+    drive = make_drive("homeostatic", n=args.n, m=args.m, scale=band, num_needs=2)
+    figure = drive_figure(drive, names, [need.unit for need in needs],
+                          [need.set_point for need in needs], band,
+                          f"homeostatic drive n = {args.n:g}, m = {args.m:g} "
+                          f"({args.preset} preset)", outcome=args.outcome)
+    save_png(figure, args.out)
+    print(f"drive figure: {args.out}")
+    return 0
+
+
 # ----------------------------------------------------------------------------
 # The parser
 # ----------------------------------------------------------------------------
@@ -507,7 +659,15 @@ _positive = _whole_number(1)
 _non_negative = _whole_number(0)
 
 
+def _add_location(parser: argparse.ArgumentParser) -> None:
+    """The DIR argument of the verbs that read a results store."""
+    parser.add_argument("location", metavar="DIR",
+                        help=f"a run's output folder, or a {STORE_NAME} file")
+
+
 def build_parser() -> argparse.ArgumentParser:
+    from needbench.benchmarks.compare import COMPARABLE
+
     parser = argparse.ArgumentParser(
         prog="needbench",
         description="Benchmark agents that keep several internal needs near their set points.",
@@ -531,7 +691,8 @@ def build_parser() -> argparse.ArgumentParser:
     run = commands.add_parser(
         "run", help="run a suite (resumes: jobs already done are skipped)",
         description="Run every job of a suite, record each in the results store as it "
-        "finishes, then print the results table and write results.csv. Rerunning with "
+        f"finishes, then print the results table and write {CSV_NAME} (one row per run). "
+        "Rerunning with "
         "the same --out skips the jobs already done.")
     run.add_argument("suite", metavar="SUITE|FILE",
                      help="a built-in suite name (see `needbench list`) or a suite TOML file")
@@ -553,19 +714,29 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--max-retries", metavar="N", type=_non_negative, default=2,
                      help="reruns of a job whose worker process died or was lost (default: 2)")
     run.add_argument("--quiet", action="store_true",
-                     help="no progress line and no summary lines, only the results table "
-                     "(progress is also off when stdout is not a terminal)")
+                     help="no progress and no summary lines, only the results table (off a "
+                     f"terminal, progress is a plain line every {PROGRESS_LINE_SECONDS:g} s)")
+    run.add_argument("--wide", action="store_true",
+                     help="print the results table with its intervals even when it is wider "
+                     "than the terminal")
+    run.add_argument("--verbose", action="store_true",
+                     help="list every agent-task pair that is not applicable, with what the "
+                     "agent needs")
     run.set_defaults(handler=command_run)
 
     results = commands.add_parser(
         "results", help="print the results table of a store",
         description="Print the results table (IQM and 95% bootstrap CI of return, "
         "discounted drive, time in band and survival per agent and task) of a results store.")
-    results.add_argument("location", metavar="DIR",
-                         help=f"a run's output folder, or a {STORE_NAME} file")
+    _add_location(results)
     output = results.add_mutually_exclusive_group()
     output.add_argument("--json", action="store_true", help="print the table as JSON")
-    output.add_argument("--csv", action="store_true", help="print the table as CSV")
+    output.add_argument("--csv", action="store_true",
+                        help="print the table as CSV: the aggregate, one row per task, agent "
+                        f"and sweep point (the per-run rows are in {CSV_NAME})")
+    results.add_argument("--wide", action="store_true",
+                         help="keep the intervals even when the table is wider than the "
+                         "terminal")
     results.set_defaults(handler=command_results)
 
     watch = commands.add_parser(
@@ -583,6 +754,61 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--fps", metavar="F", type=float, default=8.0,
                        help="frames per second on a terminal; 0 for no pause (default: 8)")
     watch.set_defaults(handler=command_watch)
+
+    report = commands.add_parser(
+        "report", help="write an HTML or Markdown report with figures of a run",
+        description="Write a report of a results store: the run's facts, one table per task "
+        "(IQM and 95% CI of every metric), and figures (internal-state traces, stability "
+        "against return, learning curves, deviation per need, the drive landscape), every "
+        "figure also as a PNG file. The HTML page embeds its figures and opens with no "
+        "network.")
+    _add_location(report)
+    report.add_argument("--out", metavar="FILE", default=None,
+                        help="the page to write (default: DIR/report.html or DIR/report.md); "
+                        "figures go to <FILE stem>-figures/ beside it")
+    report.add_argument("--format", choices=("html", "md"), default="html",
+                        help="html (default), or md for a Markdown summary linking the PNGs")
+    report.add_argument("--suite", metavar="NAME", default=None,
+                        help="only the runs of this suite (default: every run of the store)")
+    report.set_defaults(handler=command_report)
+
+    comparing = commands.add_parser(
+        "compare", help="compare two agents: probability of improvement, IQM difference",
+        description="Compare two agents of a results store on one metric, per task and over "
+        "all tasks both ran: the probability that a run of the first beats a run of the "
+        "second, and the difference of their IQMs, each with a 95% bootstrap CI "
+        "(Agarwal et al. 2021). Prints a table and writes comparison.json and "
+        "comparison.png.")
+    _add_location(comparing)
+    comparing.add_argument("--agents", nargs=2, metavar=("A", "B"), required=True,
+                           help="the two agents, A compared against B")
+    comparing.add_argument("--metric", default="return",
+                           choices=tuple(COMPARABLE),
+                           help="the metric compared (default: return)")
+    comparing.add_argument("--out", metavar="DIR", default=None,
+                           help="folder of comparison.json and comparison.png (default: "
+                           "DIR/compare-A-B-METRIC)")
+    comparing.add_argument("--json", action="store_true",
+                           help="print the comparison as JSON instead of a table")
+    comparing.set_defaults(handler=command_compare)
+
+    drive = commands.add_parser(
+        "drive", help="draw the drive landscape for chosen m and n (no run needed)",
+        description="Draw the homeostatic drive D(h) = (sum_i |(h*_i - h_i)/band_i|^n)^(1/m) "
+        "over two needs of a preset, and the reward of one fixed outcome at several "
+        "internal states, as a PNG.")
+    drive.add_argument("--m", type=float, default=2.0, help="the root m (default: 2)")
+    drive.add_argument("--n", type=float, default=3.0, help="the exponent n (default: 3)")
+    drive.add_argument("--preset", metavar="NAME", default="abstract",
+                       help="the preset whose needs are drawn: abstract (default) or mammal")
+    drive.add_argument("--needs", nargs=2, metavar=("NEED", "NEED"), default=None,
+                       help="the two needs drawn (default: the preset's first two)")
+    drive.add_argument("--outcome", type=float, default=1.0,
+                       help="the fixed outcome: an intake of this many comfort bands of the "
+                       "first need (default: 1)")
+    drive.add_argument("--out", metavar="FILE.png", default="drive.png",
+                       help="the PNG to write (default: drive.png)")
+    drive.set_defaults(handler=command_drive)
     return parser
 
 

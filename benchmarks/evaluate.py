@@ -12,7 +12,10 @@ episode of T steps:
     intake             (T, K)
     terminated, truncated  ()    bool, how the episode ended
     <event>            (T, ...)  every other numeric key of the step infos
-                                 (``disturbance``, ``cue``, ``eaten``...)
+                                 (``disturbance``, ``cue``, ``eaten``...);
+                                 spatial tasks give ``position`` (T, 2), the
+                                 agent's place on the map in [0, 1] after
+                                 each step, which the report draws as a path
 
 Seeding: episode e of an evaluation with seed s resets with
 :func:`evaluation_seeds` ``(s, N)[e]``, drawn from its own

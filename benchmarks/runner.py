@@ -43,6 +43,7 @@ from __future__ import annotations
 
 import dataclasses
 import importlib
+import math
 import multiprocessing
 import os
 import shutil
@@ -150,11 +151,14 @@ class NotApplicable:
         hash: the job's hash.
         config: the job's config.
         reason: the agent's ConfigError message.
+        needs: what the agent needs and the task lacks, in the agent's words
+            (the error's ``allowed``), for a plain listing.
     """
 
     hash: str
     config: dict[str, Any]
     reason: str
+    needs: str = ""
 
 
 def run_job(config: dict[str, Any], job_hash: str,
@@ -190,7 +194,7 @@ def run_job(config: dict[str, Any], job_hash: str,
             agent = make_agent(agent_config["name"], observation_space, action_space,
                                **agent_config["hyperparameters"])
         except NotApplicableError as rejection:
-            return NotApplicable(job_hash, config, str(rejection))
+            return NotApplicable(job_hash, config, str(rejection), rejection.allowed)
         limit_threads()  # again: building a deep agent may have loaded torch
         folder = None
         if settings.tensorboard_root is not None:
@@ -205,7 +209,7 @@ def run_job(config: dict[str, Any], job_hash: str,
             if logger.tensorboard_dir is not None:
                 logger.close()
                 shutil.rmtree(logger.tensorboard_dir, ignore_errors=True)
-            return NotApplicable(job_hash, config, str(rejection))
+            return NotApplicable(job_hash, config, str(rejection), rejection.allowed)
         env.close()
         env = None
         traces = evaluate(agent, task_id, task_kwargs, int(config["eval_episodes"]),
@@ -283,7 +287,8 @@ def _drain(queue: Any, into: set[str]) -> None:
 
 
 def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_retries: int,
-               job_function: JobFunction, on_result: ResultSink) -> None:
+               job_function: JobFunction, on_result: ResultSink,
+               on_idle: Callable[[], None] = lambda: None) -> None:
     """Run jobs in a spawn-context process pool; survive worker deaths.
 
     When a worker process dies (a crash in native code, the out-of-memory
@@ -317,6 +322,7 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
                     # otherwise fill and block the workers.
                     ready, waiting = wait(waiting, timeout=0.5, return_when=FIRST_COMPLETED)
                     _drain(started_jobs, started)
+                    on_idle()
                     for future in ready:
                         job = futures[future]
                         try:
@@ -361,7 +367,7 @@ def import_ray() -> Any:
 
 def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: str | None,
              max_retries: int, job_function: JobFunction,
-             on_result: ResultSink) -> None:
+             on_result: ResultSink, on_idle: Callable[[], None] = lambda: None) -> None:
     ray = import_ray()
     owned = not ray.is_initialized()
     if owned:
@@ -380,7 +386,8 @@ def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: 
         by_reference = {remote.remote(job.config, job.hash, settings): job for job in jobs}
         pending = list(by_reference)
         while pending:
-            ready, pending = ray.wait(pending, num_returns=1)
+            ready, pending = ray.wait(pending, num_returns=1, timeout=1.0)
+            on_idle()
             for reference in ready:
                 job = by_reference[reference]
                 try:
@@ -409,27 +416,35 @@ def _duration(seconds: float) -> str:
 
 
 class Progress:
-    """One self-rewriting status line: jobs done, failed, not applicable; elapsed time, ETA.
+    """Progress of a run: jobs done, failed, not applicable; elapsed time, ETA.
 
-    Silent unless ``enabled`` (the command line enables it when stdout is a
-    terminal and ``--quiet`` is not given). The ETA assumes the remaining jobs
+    Silent unless ``enabled`` (the command line enables it unless ``--quiet``).
+    On a terminal (``every=None``) it is one self-rewriting status line. Off a
+    terminal (batch systems, ``nohup``, a log file) give ``every`` in seconds:
+    then a plain line is printed every ``every`` seconds (the backends call
+    :meth:`tick` while they wait, so long jobs still show signs of life), and
+    once at the end. The ETA assumes the remaining jobs
     take as long on average as the finished ones.
     """
 
-    def __init__(self, total: int, skipped: int, enabled: bool, stream: TextIO | None = None):
+    def __init__(self, total: int, skipped: int, enabled: bool, stream: TextIO | None = None,
+                 every: float | None = None):
         self.total = total
         self.skipped = skipped
         self.enabled = enabled
         self.stream = stream if stream is not None else sys.stdout
+        self.every = every
         self.done = 0
         self.failed = 0
         self.not_applicable = 0
         self.start = time.perf_counter()
         self._shown = False
+        self._last_line = -math.inf
+        self._last_count = 0
 
     def begin(self) -> None:
         """Show the line before the first job finishes."""
-        if self.enabled and self.total:
+        if self.enabled and self.total and self.every is None:
             self._write(self.line(), final=False)
 
     def update(self, result: JobResult | NotApplicable) -> None:
@@ -444,10 +459,28 @@ class Progress:
         if isinstance(result, JobResult) and result.status == "failed":
             last = (result.error or "").strip().splitlines()[-1:] or [""]
             self._write(f"failed: {Job(result.config).describe()}: {last[0]}", final=True)
-        self._write(self.line(), final=False)
+        if self.every is None:
+            self._write(self.line(), final=False)
+        else:
+            self.tick()
+
+    def tick(self) -> None:
+        """Off a terminal: a plain progress line when ``every`` seconds have passed."""
+        if self.enabled and self.every is not None \
+                and time.perf_counter() - self._last_line >= self.every:
+            self._write_periodic()
+
+    def _finished(self) -> int:
+        return self.done + self.failed + self.not_applicable
+
+    def _write_periodic(self) -> None:
+        self._last_line = time.perf_counter()
+        self._last_count = self._finished()
+        self.stream.write(f"progress {self.line()}\n")
+        self.stream.flush()
 
     def line(self) -> str:
-        finished = self.done + self.failed + self.not_applicable
+        finished = self._finished()
         elapsed = time.perf_counter() - self.start
         left = self.total - finished
         eta = _duration(elapsed / finished * left) if finished else "?"
@@ -464,6 +497,11 @@ class Progress:
         self._shown = not final
 
     def close(self) -> None:
+        if self.enabled and self.every is not None:
+            # The last count, unless the last periodic line already showed it.
+            if self._finished() and self._finished() != self._last_count:
+                self._write_periodic()
+            return
         if self.enabled and self._shown:
             self.stream.write("\n")
             self.stream.flush()
@@ -486,6 +524,8 @@ class RunSummary:
         done: hashes that finished in this run.
         failed: results of the jobs that failed in this run.
         wall_seconds: duration of the call, seconds.
+        needs: for each not-applicable job's hash, what its agent needs that
+            the task lacks (:attr:`NotApplicable.needs`).
     """
 
     jobs: list[Job]
@@ -494,6 +534,7 @@ class RunSummary:
     done: set[str] = field(default_factory=set)
     failed: list[JobResult] = field(default_factory=list)
     wall_seconds: float = 0.0
+    needs: dict[str, str] = field(default_factory=dict)
 
     @property
     def ok(self) -> bool:
@@ -557,7 +598,7 @@ def check_reachable(address: str) -> None:
 def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
               backend: str = "local", address: str | None = None,
               settings: RunSettings | None = None, max_retries: int = 2,
-              progress: Progress | bool = False,
+              progress: Progress | bool = False, progress_every: float | None = None,
               job_function: JobFunction = run_job) -> RunSummary:
     """Run every job of ``suite`` not yet done in ``store``, recording each as it finishes.
 
@@ -572,6 +613,8 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
         max_retries: runs of a job again after its worker process died or
             was lost (not after the job raised).
         progress: a :class:`Progress`, or True/False for one on stdout.
+        progress_every: for ``progress=True``, None for a self-rewriting
+            line (a terminal), or seconds between plain progress lines.
         job_function: what runs one job (a module-level function with the
             signature of :func:`run_job`, picklable by reference).
 
@@ -586,11 +629,13 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
     summary = RunSummary(jobs=jobs, skipped={job.hash for job in jobs if job.hash in completed})
     pending = [job for job in jobs if job.hash not in completed]
     if not isinstance(progress, Progress):
-        progress = Progress(len(pending), len(summary.skipped), bool(progress))
+        progress = Progress(len(pending), len(summary.skipped), bool(progress),
+                            every=progress_every)
 
     def record(result: JobResult | NotApplicable) -> None:
         if isinstance(result, NotApplicable):
             summary.not_applicable.append((Job(result.config), result.reason))
+            summary.needs[result.hash] = result.needs or result.reason
             progress.update(result)
             return
         store.record_job(result)
@@ -603,9 +648,11 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
     progress.begin()
     try:
         if pending and backend == "local":
-            _run_local(pending, settings, workers, max_retries, job_function, record)
+            _run_local(pending, settings, workers, max_retries, job_function, record,
+                       progress.tick)
         elif pending:
-            _run_ray(pending, settings, workers, address, max_retries, job_function, record)
+            _run_ray(pending, settings, workers, address, max_retries, job_function, record,
+                     progress.tick)
     finally:
         progress.close()
         summary.wall_seconds = time.perf_counter() - clock

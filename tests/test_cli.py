@@ -20,7 +20,7 @@ from scipy import stats
 
 import needbench.envs
 from needbench.agents.registry import AGENTS
-from needbench.benchmarks.cli import builtin_suites, load_suite, main
+from needbench.benchmarks.cli import Cell, builtin_suites, format_table, load_suite, main
 from needbench.benchmarks.runner import run_suite
 from needbench.benchmarks.spec import expand, parse_suite
 from needbench.benchmarks.store import Store
@@ -84,7 +84,7 @@ def test_run_writes_store_csv_tensorboard_and_table(local_run, capsys):
         assert {(run["task_id"], run["agent"]) for run in runs} == {
             ("needbench/Menu-v0", "random"), ("needbench/Menu-v0", "tabular-q"),
             ("needbench/Arena-v0", "random")}
-    with (out / "results.csv").open(newline="") as handle:
+    with (out / "runs.csv").open(newline="") as handle:
         rows = list(csv.DictReader(handle))
     assert len(rows) == SUITE_JOBS and {"return", "discounted_drive", "survival"} <= set(rows[0])
     assert len(list((out / "tensorboard").iterdir())) == SUITE_JOBS
@@ -121,7 +121,13 @@ def test_rerun_skips_what_is_done(local_run, capsys):
     assert main(["run", str(suite), "--out", str(out)]) == 0
     printed = capsys.readouterr().out
     assert f"0 done now, {SUITE_JOBS} already done" in printed
-    assert "not applicable, not run: tabular-q on needbench/Arena-v0" in printed
+    assert f"{SUITE_JOBS} jobs already done in {out / 'results.sqlite3'} were not run again" \
+        in printed
+    assert "1 agent-task pair not applicable (the agent cannot act on that task), 4 jobs not " \
+        "run; --verbose lists them" in printed
+    assert main(["run", str(suite), "--out", str(out), "--verbose"]) == 0
+    printed = capsys.readouterr().out
+    assert "  tabular-q on Arena-v0: the agent needs a Discrete space" in printed
     after = {run["hash"]: run["finished"] for run in Store(out / "results.sqlite3").runs()}
     assert after == before
 
@@ -292,7 +298,8 @@ def test_version_and_help(capsys):
     assert capsys.readouterr().out.startswith("needbench ")
     assert main([]) == 0
     printed = capsys.readouterr().out
-    assert all(verb in printed for verb in ("list", "describe", "run", "results", "watch"))
+    assert all(verb in printed for verb in ("list", "describe", "run", "results", "watch",
+                                            "report", "compare", "drive"))
 
 
 def test_list_shows_every_task_agent_and_suite(capsys):
@@ -310,6 +317,18 @@ def test_describe_shows_the_needs_of_the_task(capsys):
         line = next(line for line in printed.splitlines() if line.strip().startswith(need.name))
         assert f"{need.set_point:g}" in line and f"{need.band:g}" in line and need.unit in line
     assert "time limit: 200 steps" in printed and "max_steps" in printed
+
+
+def test_describe_lists_everything_and_names_the_actions(capsys):
+    assert main(["describe", "ForageWide"]) == 0
+    printed = capsys.readouterr().out
+    world = gym.make("needbench/ForageWide-v0").unwrapped.core.world
+    assert len(world.feature_names) > 100
+    # Every feature name in full, none cut off with an ellipsis.
+    assert all(name in printed for name in world.feature_names) and "..." not in printed
+    assert "0 stay, 1 north, 2 east, 3 south, 4 west" in printed
+    assert main(["describe", "Shift"]) == 0
+    assert "0 rake salt" in capsys.readouterr().out
 
 
 def test_watch_shows_one_frame_per_step(capsys):
@@ -332,3 +351,27 @@ def test_builtin_suites_fit_the_registries():
                                                               "needbench/Forage-v0"}
     labels = {sweep.label for sweep in suites["tradeoff"].sweeps}
     assert "task.task_weight" in labels and any("gamma" in label for label in labels)
+
+
+def _cells(runs: int) -> list[Cell]:
+    estimate = (1.25, None, None) if runs < 3 else (1.25, 0.5, 2.0)
+    return [Cell("s", "needbench/Menu-v0", agent, "{}", runs, 0,
+                 {"return": estimate, "discounted_drive": estimate, "time_in_band": estimate,
+                  "survival": estimate}) for agent in ("random", "tabular-q")]
+
+
+def test_results_table_narrows_to_the_terminal_or_stays_wide():
+    wide = format_table(_cells(4))
+    assert "return IQM [95% CI]" in wide and "1.25 [0.5, 2]" in wide
+    assert "left out" not in wide
+    narrow = format_table(_cells(4), width=80)
+    assert "1.25 [0.5, 2]" not in narrow and "return" in narrow
+    assert "95% intervals left out to fit 80 columns; --wide shows them." in " ".join(
+        narrow.split())
+    assert max(len(line) for line in narrow.splitlines()) <= 80
+
+
+def test_results_table_shows_no_interval_under_three_runs():
+    table = format_table(_cells(2))
+    assert "[" not in table.split("\n", 2)[2].split("(")[0]
+    assert "fewer than 3 runs show the IQM and no interval" in table

@@ -233,6 +233,37 @@ def test_progress_line_counts_and_estimates(monkeypatch):
                                " | ETA 0m30s")
 
 
+def test_progress_off_a_terminal_prints_plain_lines_now_and_then(monkeypatch):
+    import io
+
+    # perf_counter readings: start, then one per update / line written.
+    now = [0.0]
+    monkeypatch.setattr(runner.time, "perf_counter", lambda: now[0])
+    stream = io.StringIO()
+    progress = Progress(total=3, skipped=0, enabled=True, stream=stream, every=10.0)
+    progress.begin()
+    job = _job()
+    result = JobResult(hash=job.hash, config=job.config, status="done", started=0.0,
+                       finished=1.0, wall_seconds=1.0)
+    for moment in (2.0, 5.0):
+        now[0] = moment
+        progress.update(result)
+    # While a long job runs, the backend's ticks still print a line every 10 s.
+    for moment in (8.0, 12.5, 13.0):
+        now[0] = moment
+        progress.tick()
+    now[0] = 14.0
+    progress.update(result)
+    progress.close()
+    lines = stream.getvalue().splitlines()
+    # A line at the first job, none 3 s or 6 s later, one at 12.5 s, a last one at the end;
+    # no terminal control codes.
+    assert lines == ["progress [1/3] 1 done, 0 failed | elapsed 0m02s | ETA 0m04s",
+                     "progress [2/3] 2 done, 0 failed | elapsed 0m12s | ETA 0m06s",
+                     "progress [3/3] 3 done, 0 failed | elapsed 0m14s | ETA 0m00s"]
+    assert "\r" not in stream.getvalue()
+
+
 @pytest.mark.parametrize("agent, task", [
     ("tabular-q", "needbench/Arena-v0"), ("exact-planner", "needbench/Forage-v0"),
     ("setpoint-controller", "needbench/Forewarn-v0"), ("sac", "needbench/Menu-v0"),
