@@ -14,8 +14,9 @@ episode of T steps:
     <event>            (T, ...)  every other numeric key of the step infos
                                  (``disturbance``, ``cue``, ``eaten``...);
                                  spatial tasks give ``position`` (T, 2), the
-                                 agent's place on the map in [0, 1] after
-                                 each step, which the report draws as a path
+                                 agent's place after each step (Arena: x, y
+                                 in [0, 1]; Forage: row and column), which
+                                 the report draws as a path
 
 Seeding: episode e of an evaluation with seed s resets with
 :func:`evaluation_seeds` ``(s, N)[e]``, drawn from its own

@@ -250,15 +250,20 @@ def _event_strip(axis: Any, episodes: Mapping[str, Mapping[str, np.ndarray]], ne
 
 
 def path_figure(task: str, paths: Mapping[str, np.ndarray], styles: Mapping[str, Style]) -> Figure:
-    """The agent's path on the map, one line per agent; positions in [0, 1] x [0, 1].
+    """The agent's path on the map, one line per agent.
 
     Args:
-        paths: {agent label: (T, 2) positions from the trace's ``position``}.
+        paths: {agent label: (T, 2) positions from the trace's ``position``}:
+            (x, y) in [0, 1] x [0, 1] on a continuous map (Arena), or whole
+            (row, column) cells on a grid (Forage), drawn with north up.
     """
     figure, axes = new_figure()
     axis = axes[0, 0]
+    grid = all(np.issubdtype(np.asarray(p).dtype, np.integer) for p in paths.values())
     for label, path in paths.items():
         path = np.asarray(path, dtype=np.float64)
+        if grid:  # (row, column) -> (x = column, y = row), rows counted downward
+            path = path[:, ::-1]
         style = styles[label]
         axis.plot(path[:, 0], path[:, 1], color=style.colour, linewidth=1.2, alpha=0.85,
                   label=label)
@@ -270,11 +275,18 @@ def path_figure(task: str, paths: Mapping[str, np.ndarray], styles: Mapping[str,
               label="start (agent's marker)")
     axis.plot([], [], marker="X", color="#999999", markeredgecolor="black", linestyle="",
               label="end")
-    axis.set_xlim(0, 1)
-    axis.set_ylim(0, 1)
     axis.set_aspect("equal")
-    axis.set_xlabel("x position (share of the map's width)")
-    axis.set_ylabel("y position (share of the map's height)")
+    if grid:
+        extent = max(float(np.max(p)) for p in paths.values()) + 1.0
+        axis.set_xlim(-0.5, extent)
+        axis.set_ylim(extent, -0.5)  # row 0 (north) at the top
+        axis.set_xlabel("column (cells)")
+        axis.set_ylabel("row (cells, north at the top)")
+    else:
+        axis.set_xlim(0, 1)
+        axis.set_ylim(0, 1)
+        axis.set_xlabel("x position (share of the map's width)")
+        axis.set_ylabel("y position (share of the map's height)")
     axis.set_title(f"{task}: path on the map over the same episodes")
     axis.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8)
     return figure

@@ -28,7 +28,8 @@ def test_every_task_and_variant_has_a_recording():
 def test_rollout_reproduces_the_recording(name, variant):
     recorded = np.load(rollouts.path(name, variant))
     replayed = rollouts.rollout(rollouts.current_id(name), rollouts.VARIANTS[variant])
-    assert set(replayed) == set(recorded.files)
+    # Every recorded field is reproduced; a later field (Forage's position) may be added.
+    assert set(recorded.files) <= set(replayed)
     for key in recorded.files:
         old, new = recorded[key], replayed[key]
         assert new.shape == old.shape, key

@@ -330,7 +330,7 @@ def _step(actions, constants, state, events, engine):
     neutral_ambient, air_to_ambient = by_need[NEUTRAL_AMBIENT], by_need[AIR_TO_AMBIENT]
     sun_to_forcing = by_need[SUN_TO_FORCING]
     terrain, stock, position, clock = state
-    eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event = events
+    eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event, where = events
     intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
     activity, task = engine[ACTIVITY], engine[TASK]
     rows, columns = terrain.shape[1], terrain.shape[2]
@@ -364,6 +364,7 @@ def _step(actions, constants, state, events, engine):
         task[b] = 0.0
         eaten_event[b], drunk_event[b], bumped_event[b] = eaten, drunk, bumped
         sun_event[b], air_event[b], time_event[b] = sunlight, air, hour / day_length
+        where[b, 0], where[b, 1] = row, column
         clock[b] += 1
     settle_all(engine)
     observe_copies(None, constants, state, engine)
@@ -378,7 +379,8 @@ class ForageWorld(World):
     """B walled oasis gardens, stepped by compiled kernels copy by copy.
 
     Actions: 0 stay, 1 north, 2 east, 3 south, 4 west. A move into a wall
-    leaves the agent where it is (``bumped`` in info) but still costs the
+    leaves the agent where it is (``bumped`` in info; ``position`` in info is the
+    agent's row and column after the move) but still costs the
     effort. Eating and drinking are automatic: every step the agent ends on a
     fig bush it takes one bite (at most ``bite``, at most what the bush holds),
     and every step it ends on a water cell it drinks ``sip``. Staying put on a
@@ -537,7 +539,8 @@ class ForageWorld(World):
     def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
         return {"eaten": np.zeros(batch), "drunk": np.zeros(batch),
                 "bumped": np.zeros(batch, dtype=np.bool_), "sunlight": np.zeros(batch),
-                "air_temperature": np.zeros(batch), "time_of_day": np.zeros(batch)}
+                "air_temperature": np.zeros(batch), "time_of_day": np.zeros(batch),
+                "position": np.zeros((batch, 2), dtype=np.int64)}
 
     # --- time of day ----------------------------------------------------------
 
