@@ -107,11 +107,11 @@ def resolve_suite(name: str) -> Path:
 
 
 def load_suite(name: str):
-    """Parse and validate a suite, checking task ids and agent names against the registries."""
-    from needbench.agents.registry import AGENTS
-    from needbench.benchmarks.spec import parse_suite
+    """Parse a suite and check it whole (``benchmarks.spec.load_suite``): task ids, agent
+    names, every keyword, hyperparameter and sweep value, before anything runs."""
+    from needbench.benchmarks import spec
 
-    return parse_suite(resolve_suite(name), known_tasks=task_ids(), known_agents=list(AGENTS))
+    return spec.load_suite(resolve_suite(name))
 
 
 def _first_line(text: str | None) -> str:
@@ -435,29 +435,27 @@ def command_results(args: argparse.Namespace) -> int:
 def command_watch(args: argparse.Namespace) -> int:
     import gymnasium as gym
 
-    from needbench.agents.registry import AGENTS, check_agent_name, make_agent
+    from needbench.agents.base import learning_env
+    from needbench.agents.registry import check_agent_name, make_agent
     from needbench.benchmarks.evaluate import evaluation_seeds, rollout_single
     from needbench.benchmarks.metrics import episode_metrics
-    from needbench.benchmarks.runner import make_learning_env
 
     task_id = resolve_task(args.task)
     name = check_agent_name(args.agent)
     kwargs = {} if args.steps is None else {"max_steps": args.steps}
-    learning_env = make_learning_env(task_id, {}, AGENTS[name])
+    probe = gym.make(task_id)
+    agent = make_agent(name, probe.observation_space, probe.action_space)
+    probe.close()
+    learning = learning_env(agent, task_id)
     try:
-        if isinstance(learning_env, gym.vector.VectorEnv):
-            spaces = learning_env.single_observation_space, learning_env.single_action_space
-        else:
-            spaces = learning_env.observation_space, learning_env.action_space
-        agent = make_agent(name, *spaces)
         if args.learn_steps:
             print(f"{name} learns for {args.learn_steps} steps first (a short budget; "
                   "--learn-steps N changes it; agents that do not learn ignore it)")
         else:
             print(f"{name} acts without learning (--learn-steps 0)")
-        agent.learn(learning_env, args.learn_steps, args.seed, None)
+        agent.learn(learning, args.learn_steps, args.seed, None)
     finally:
-        learning_env.close()
+        learning.close()
     interactive = sys.stdout.isatty()
     delay = 1.0 / args.fps if interactive and args.fps > 0 else 0.0
     env = gym.make(task_id, render_mode="ansi", **kwargs)

@@ -423,9 +423,14 @@ class NeedEnv(gym.Env):
 class NeedVectorEnv(VectorEnv):
     """Native vector shell around :class:`TaskCore` (B = num_envs).
 
-    Autoreset follows Gymnasium's next-step mode: after a copy's episode ends,
-    the following ``step`` resets that copy, ignores its action and returns its
-    first observation with reward 0.
+    Autoreset follows Gymnasium's modes (``autoreset_mode``). ``NEXT_STEP``
+    (the default): after a copy's episode ends, the following ``step`` resets
+    that copy, ignores its action and returns its first observation with
+    reward 0. ``SAME_STEP``: the step that ends a copy's episode resets it at
+    once and returns its first observation, with the step's reward and end
+    flags; the last observation and step info are in ``info["final_obs"]``
+    and ``info["final_info"]`` (rows of the copies flagged by
+    ``info["_final_obs"]``), and the copy's other info rows are its reset info.
     """
 
     world_cls: ClassVar[type[World]]
@@ -433,9 +438,16 @@ class NeedVectorEnv(VectorEnv):
     metadata = {"render_modes": ["ansi", "rgb_array"], "render_fps": 8,
                 "autoreset_mode": AutoresetMode.NEXT_STEP}
 
-    def __init__(self, num_envs: int = 1, render_mode: str | None = None, **kwargs: Any):
+    def __init__(self, num_envs: int = 1, render_mode: str | None = None,
+                 autoreset_mode: AutoresetMode | str = AutoresetMode.NEXT_STEP, **kwargs: Any):
         if not isinstance(num_envs, (int, np.integer)) or num_envs < 1:
             raise ConfigError("num_envs", num_envs, "a whole number >= 1")
+        modes = (AutoresetMode.NEXT_STEP, AutoresetMode.SAME_STEP)
+        if autoreset_mode not in modes and autoreset_mode not in [m.value for m in modes]:
+            raise ConfigError("autoreset_mode", autoreset_mode,
+                              "AutoresetMode.NEXT_STEP or AutoresetMode.SAME_STEP")
+        self.autoreset_mode = AutoresetMode(autoreset_mode)
+        self.metadata = {**type(self).metadata, "autoreset_mode": self.autoreset_mode}
         if render_mode is not None:
             check_choice("render_mode", render_mode, self.metadata["render_modes"])
         self.render_mode = render_mode
@@ -470,24 +482,44 @@ class NeedVectorEnv(VectorEnv):
 
     def step(self, actions):
         batched = self.core.validate_actions(actions, self.action_space)
+        if self.autoreset_mode == AutoresetMode.SAME_STEP:
+            return self._step_same(batched)
         resetting = self._done.copy()
         reward, terminated, truncated, info = self.core.step(batched)
         if resetting.any():
-            keys = np.array([key_from(self._copy_rngs[i]) for i in np.flatnonzero(resetting)],
-                            dtype=np.uint64)
-            self.core.reset(keys, resetting)
-            fresh = self.core.body_info()
-            for key, value in info.items():
-                if key in fresh:
-                    value[resetting] = fresh[key][resetting]
-                else:
-                    value[resetting] = 0
-            info["alive"][resetting] = True
+            self._reset_copies(resetting, info)
             reward[resetting] = 0.0
             terminated[resetting] = False
             truncated[resetting] = False
         self._done = terminated | truncated
         return self.core.observe(), reward, terminated, truncated, info
+
+    def _step_same(self, batched: np.ndarray):
+        """One step in same-step autoreset (class docstring)."""
+        reward, terminated, truncated, info = self.core.step(batched)
+        done = terminated | truncated
+        if done.any():
+            observed = self.core.observe()  # copied: the reset below may reuse world arrays
+            final_obs = ({key: value.copy() for key, value in observed.items()}
+                         if isinstance(observed, dict) else observed.copy())
+            final_info = {key: np.array(value, copy=True) for key, value in info.items()}
+            self._reset_copies(done, info)
+            info.update(final_obs=final_obs, _final_obs=done.copy(), final_info=final_info,
+                        _final_info=done.copy())
+        return self.core.observe(), reward, terminated, truncated, info
+
+    def _reset_copies(self, mask: np.ndarray, info: dict[str, np.ndarray]) -> None:
+        """Reset the copies in ``mask``; their rows of ``info`` become their reset info."""
+        keys = np.array([key_from(self._copy_rngs[i]) for i in np.flatnonzero(mask)],
+                        dtype=np.uint64)
+        self.core.reset(keys, mask)
+        fresh = self.core.body_info()
+        for key, value in info.items():
+            if key in fresh:
+                value[mask] = fresh[key][mask]
+            else:
+                value[mask] = 0
+        info["alive"][mask] = True
 
     def render(self):
         if self.render_mode is None:

@@ -22,7 +22,10 @@ from needbench.agents.base import (
     copy_seeds,
     decode_space,
     encode_space,
+    exploration_keys,
 )
+from needbench.agents.curves import EPISODE_RETURN
+import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.agents.random_agent import RandomAgent
 from needbench.agents.registry import AGENTS, make_agent, register_agent
 from needbench.envs.errors import ConfigError
@@ -88,7 +91,7 @@ def test_register_agent_adds_one_lazy_line_and_reports_missing_packages():
 
 def test_null_logger_fits_the_logger_protocol():
     assert isinstance(NullLogger(), Logger)
-    assert NullLogger().log_scalar("charts/episodic_return", 1.0, 3) is None
+    assert NullLogger().log_scalar(EPISODE_RETURN, 1.0, 3) is None
 
 
 def test_as_vector_env_batches_a_single_env_and_keeps_vector_envs():
@@ -145,15 +148,28 @@ def test_loading_a_file_that_is_no_agent_file_is_a_config_error(tmp_path):
         Agent.load(other)
 
 
-def test_copy_seeds_depend_on_seed_and_copy_only():
-    seeds_a, keys_a = copy_seeds(3, 4)
-    seeds_b, keys_b = copy_seeds(3, 8)
-    assert seeds_a == seeds_b[:4] and np.array_equal(keys_a, keys_b[:4])
-    # Common practice, no source: distinct seeds do not share env streams (seed + j would).
-    assert not set(copy_seeds(4, 4)[0]) & set(seeds_a)
-    assert all(0 <= s < 2**31 for s in seeds_b)
+def test_copy_seeds_are_gymnasiums_seed_plus_copy_index():
+    assert copy_seeds(3, 4) == [3, 4, 5, 6]
+    keys_a, keys_b = exploration_keys(3, 4), exploration_keys(3, 8)
+    assert np.array_equal(keys_a, keys_b[:4]) and len(set(keys_b.tolist())) == 8
+    # Copy 1 of seed 3 and copy 0 of seed 4 are the same copy seed, so the same stream.
+    assert keys_a[1] == exploration_keys(4, 1)[0]
     with pytest.raises(ConfigError, match="seed"):
         copy_seeds(-1, 2)
+
+
+def test_the_vector_envs_apply_copy_seeds_to_an_int_seed():
+    # Source: Gymnasium's SyncVectorEnv.reset(seed=s) seeds copy j with s + j; the native
+    # vector env and copy_seeds follow it, so an int seed and the list agree.
+    native = gym.make_vec("needbench/Menu-v0", num_envs=3, vectorization_mode="vector_entry_point")
+    sync = gym.make_vec("needbench/Menu-v0", num_envs=3, vectorization_mode="sync")
+    from_int, _ = native.reset(seed=11)
+    from_list, _ = native.reset(seed=copy_seeds(11, 3))
+    from_sync, _ = sync.reset(seed=11)
+    np.testing.assert_array_equal(from_int, from_list)
+    np.testing.assert_array_equal(from_int, from_sync)
+    native.close()
+    sync.close()
 
 
 # --- random --------------------------------------------------------------------------------------
