@@ -46,6 +46,7 @@ import hashlib
 import itertools
 import json
 import math
+import re
 import tomllib
 from collections.abc import Collection, Mapping
 from dataclasses import dataclass, field
@@ -629,6 +630,19 @@ def _env_class(task_id: str) -> type | None:
     return getattr(importlib.import_module(module_name), class_name, None)
 
 
+#: A drive names its parameters ``drive.<name>`` (or the drive, for unknown names).
+_DRIVE_PATH = re.compile(r"^drive(?:\.(\w+)| \(.*\))$")
+
+
+def _keyword_path(path: str, kwargs: Mapping[str, Any]) -> str:
+    """The suite keyword behind a task's error path: a drive parameter is under
+    ``drive_params`` in the suite."""
+    match = _DRIVE_PATH.match(path)
+    if match and "drive_params" in kwargs:
+        return "drive_params" + (f".{match.group(1)}" if match.group(1) else "")
+    return path
+
+
 class _Checker:
     """Runs each task's and agent's own checks on a parsed suite; raises SuiteError."""
 
@@ -667,10 +681,10 @@ class _Checker:
             arguments = task_arguments(kwargs)
             gym.make(task_id, **arguments).close()
         except ConfigError as error:
+            where = _keyword_path(error.path, kwargs)
             if blame is None:
-                raise self.error(_join(path, error.path), error.value, error.allowed) from None
-            raise self.error(blame, error.value,
-                             f"{error.allowed} ({task_id}: {error.path})") from None
+                raise self.error(_join(path, where), error.value, error.allowed) from None
+            raise self.error(blame, error.value, f"{error.allowed} ({task_id}: {where})") from None
         except Exception as error:  # a value the task's constructor could not use at all
             raise self.error(blame or path, dict(kwargs) if blame is None else blamed,
                              f"keywords {task_id} accepts ({type(error).__name__}: {error})"
