@@ -203,3 +203,49 @@ def test_random_agent_is_reproducible_from_its_seed(tmp_path):
     assert actions(reloaded) == actions(fresh)  # a loaded agent restarts its seed's stream
     with pytest.raises(ConfigError, match="seed"):
         first.learn(None, 0, seed=-3)
+
+
+# --- one observation or a batch, for every registered agent ---------------------------------------
+
+#: A task each agent handles, and a budget that is quick.
+ACT_CASES = {
+    "random": ("needbench/Menu-v0", 0, {}),
+    "exact-planner": ("needbench/Menu-v0", 0, {}),
+    "tabular-q": ("needbench/Menu-v0", 200, {}),
+    "setpoint-controller": ("needbench/Forage-v0", 0, {}),
+    "ppo": ("needbench/Menu-v0", 64, {"n_steps": 32, "batch_size": 32, "n_epochs": 1}),
+    "a2c": ("needbench/Menu-v0", 64, {"n_steps": 8}),
+    "dqn": ("needbench/Menu-v0", 64, {"learning_starts": 16, "batch_size": 16}),
+    "sac": ("needbench/Arena-v0", 64, {"learning_starts": 16, "batch_size": 16}),
+}
+
+
+def test_every_registered_agent_has_an_act_case():
+    assert set(ACT_CASES) == set(AGENTS)
+
+
+@pytest.mark.parametrize("name", sorted(ACT_CASES))
+def test_act_takes_one_observation_or_a_batch(name):
+    from needbench.agents.base import learning_env
+
+    if name in ("ppo", "a2c", "dqn", "sac"):
+        pytest.importorskip("stable_baselines3")
+    task, budget, hyperparameters = ACT_CASES[name]
+    single = gym.make(task)
+    agent = make_agent(name, single.observation_space, single.action_space, **hyperparameters)
+    env = learning_env(agent, task, {"max_steps": 30})
+    agent.learn(env, budget, seed=0)
+    env.close()
+    observations, _ = gym.make_vec(task, num_envs=5,
+                                   vectorization_mode="vector_entry_point").reset(seed=1)
+    batch = np.asarray(agent.act(observations))
+    # Source: Gymnasium's batch_space: B actions of the single space, with a leading axis.
+    assert batch.shape == (5,) + single.action_space.shape
+    one = agent.act(observations[0])  # as Stable-Baselines3's predict: one action
+    assert np.shape(one) == single.action_space.shape
+    assert single.action_space.contains(np.asarray(one, dtype=single.action_space.dtype))
+    if name != "random":  # random draws afresh on every call
+        np.testing.assert_allclose(np.asarray(one, dtype=float), batch[0].astype(float),
+                                   rtol=1e-5, atol=1e-6)
+    with pytest.raises(ConfigError, match="observations"):
+        agent.act(observations[:, :2])  # neither one observation nor a batch of them
