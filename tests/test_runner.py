@@ -116,6 +116,24 @@ def test_the_logger_writes_with_either_writer(tmp_path, monkeypatch):
     assert not (tmp_path / "none").exists()
 
 
+def test_a_deep_job_writes_one_run_with_our_scalar_names_only(tmp_path):
+    pytest.importorskip("stable_baselines3")
+    job = _job(agent="ppo", hyperparameters={"n_steps": 32, "batch_size": 32, "n_epochs": 1,
+                                             "n_envs": 2}, total_steps=256)
+    result = run_job(job.config, job.hash, RunSettings(tensorboard_root=str(tmp_path)))
+    assert result.status == "done", result.error
+    (folder,) = tmp_path.iterdir()
+    # One run per job: event files in the job's folder, no run nested inside it.
+    assert all(entry.is_file() for entry in folder.iterdir())
+    tags = set(_scalar_events(folder))
+    assert {EPISODE_RETURN, "episode/length", TIME_IN_BAND, "update/value_loss",
+            "eval/return"} <= tags
+    assert {tag.split("/")[0] for tag in tags} <= {"episode", "stability", "update", "eval"}
+    # The curves the store keeps are the event file's, and deep runs log episode lengths.
+    assert {tag for _, tag, _ in result.curves} == tags - {t for t in tags
+                                                           if t.startswith("eval/")}
+
+
 def test_a_job_that_raises_comes_back_failed_with_its_traceback():
     # 4096 bins per internal need make a table too large: tabular-q refuses it in learn().
     job = _job(hyperparameters={"internal_bins": 4096})
