@@ -7,8 +7,8 @@ agent walks to sources, so horizons are longer) and ``generic`` (any other
 Gymnasium env; SB3's own defaults).
 
 Every field is a keyword of the SB3 algorithm's constructor except the
-adapter's own, :data:`ADAPTER_FIELDS` (network widths, copies, normalisation,
-threads, verbosity): :func:`algorithm_arguments` is the one table from a
+adapter's own, :class:`AdapterSettings` (network widths, copies,
+normalisation, threads, verbosity): :func:`algorithm_arguments` is the one table from a
 dataclass to the SB3 keywords.
 """
 
@@ -28,9 +28,6 @@ from needbench.envs.errors import ConfigError, check_choice, check_positive, che
 
 TASK_KINDS = ("outcome", "spatial", "generic")
 
-#: Fields every deep agent's dataclass has that the adapter uses itself (not SB3 keywords).
-ADAPTER_FIELDS = ("net_arch", "n_envs", "normalise_observations", "normalise_rewards",
-                  "torch_threads", "verbose")
 
 
 def _check_whole(path: str, value: Any, minimum: int) -> None:
@@ -54,8 +51,17 @@ def _check_layers(path: str, value: Any) -> tuple[int, ...]:
     return tuple(int(w) for w in layers)
 
 
-class _CommonChecks:
-    """Checks of the fields every deep agent's dataclass has."""
+@dataclass(frozen=True)
+class AdapterSettings:
+    """The fields every deep agent's dataclass has, used by the adapter itself (not SB3
+    keywords); an algorithm's dataclass may give one another default."""
+
+    net_arch: tuple[int, ...] = (64, 64)  # hidden layer widths (policy and value)
+    n_envs: int | None = None  # copies to learn on (None: the task kind's, else 1)
+    normalise_observations: bool | None = False  # wrap the copies in VecNormalize (observations)
+    normalise_rewards: bool | None = False  # wrap the copies in VecNormalize (rewards)
+    torch_threads: int = 1  # torch intra-op threads of this worker
+    verbose: int = 0  # SB3 verbosity (0 silent)
 
     def _check_common(self, name: str) -> None:
         object.__setattr__(self, "net_arch", _check_layers(f"{name}.net_arch", self.net_arch))
@@ -73,7 +79,7 @@ class _CommonChecks:
 
 
 @dataclass(frozen=True)
-class PPOHyperparameters(_CommonChecks):
+class PPOHyperparameters(AdapterSettings):
     learning_rate: float | None = None  # Adam step size (None: task kind's)
     n_steps: int | None = None  # steps per copy between updates (None: task kind's)
     batch_size: int | None = None  # minibatch size of each gradient step (None: task kind's)
@@ -84,12 +90,8 @@ class PPOHyperparameters(_CommonChecks):
     ent_coef: float | None = None  # entropy bonus weight (None: task kind's)
     vf_coef: float = 0.5  # value loss weight
     max_grad_norm: float = 0.5  # gradient clipping
-    net_arch: tuple[int, ...] = (64, 64)  # hidden layer widths (policy and value)
-    n_envs: int | None = None  # copies to learn on (None: the task kind's, else 1)
     normalise_observations: bool | None = None  # VecNormalize observations (None: kind's)
     normalise_rewards: bool | None = None  # VecNormalize rewards (None: task kind's)
-    torch_threads: int = 1  # torch intra-op threads of this worker
-    verbose: int = 0  # SB3 verbosity (0 silent)
 
     def __post_init__(self):
         self._check_common("ppo")
@@ -107,7 +109,7 @@ class PPOHyperparameters(_CommonChecks):
 
 
 @dataclass(frozen=True)
-class A2CHyperparameters(_CommonChecks):
+class A2CHyperparameters(AdapterSettings):
     learning_rate: float = 7e-4  # RMSprop step size
     n_steps: int | None = None  # steps per copy between updates (None: task kind's)
     gamma: float | None = None  # discount (None: task kind's)
@@ -115,12 +117,6 @@ class A2CHyperparameters(_CommonChecks):
     ent_coef: float | None = None  # entropy bonus weight (None: task kind's)
     vf_coef: float = 0.5  # value loss weight
     max_grad_norm: float = 0.5  # gradient clipping
-    net_arch: tuple[int, ...] = (64, 64)  # hidden layer widths (policy and value)
-    n_envs: int | None = None  # copies to learn on (None: the task kind's, else 1)
-    normalise_observations: bool = False  # wrap the copies in VecNormalize (observations)
-    normalise_rewards: bool = False  # wrap the copies in VecNormalize (rewards)
-    torch_threads: int = 1  # torch intra-op threads of this worker
-    verbose: int = 0  # SB3 verbosity (0 silent)
 
     def __post_init__(self):
         self._check_common("a2c")
@@ -134,7 +130,7 @@ class A2CHyperparameters(_CommonChecks):
 
 
 @dataclass(frozen=True)
-class DQNHyperparameters(_CommonChecks):
+class DQNHyperparameters(AdapterSettings):
     learning_rate: float = 5e-4  # Adam step size
     buffer_size: int = 50_000  # replay buffer capacity (transitions)
     learning_starts: int | None = None  # steps of pure exploration first (None: task kind's)
@@ -145,12 +141,6 @@ class DQNHyperparameters(_CommonChecks):
     target_update_interval: int = 1000  # env steps between target network copies
     exploration_fraction: float = 0.3  # share of the budget over which epsilon decays
     exploration_final_eps: float = 0.05  # epsilon after the decay
-    net_arch: tuple[int, ...] = (64, 64)  # hidden layer widths of the Q network
-    n_envs: int | None = None  # copies to learn on (None: the task kind's, else 1)
-    normalise_observations: bool = False  # wrap the copies in VecNormalize (observations)
-    normalise_rewards: bool = False  # wrap the copies in VecNormalize (rewards)
-    torch_threads: int = 1  # torch intra-op threads of this worker
-    verbose: int = 0  # SB3 verbosity (0 silent)
 
     def __post_init__(self):
         self._check_common("dqn")
@@ -166,7 +156,7 @@ class DQNHyperparameters(_CommonChecks):
 
 
 @dataclass(frozen=True)
-class SACHyperparameters(_CommonChecks):
+class SACHyperparameters(AdapterSettings):
     learning_rate: float = 3e-4  # Adam step size (actor, critics, temperature)
     buffer_size: int = 100_000  # replay buffer capacity (transitions)
     learning_starts: int | None = None  # steps of uniform actions first (None: task kind's)
@@ -177,11 +167,6 @@ class SACHyperparameters(_CommonChecks):
     gradient_steps: int = 1  # gradient steps per phase
     ent_coef: str | float = "auto"  # entropy temperature, or "auto" to tune it
     net_arch: tuple[int, ...] = (256, 256)  # hidden layer widths (actor and critics)
-    n_envs: int | None = None  # copies to learn on (None: the task kind's, else 1)
-    normalise_observations: bool = False  # wrap the copies in VecNormalize (observations)
-    normalise_rewards: bool = False  # wrap the copies in VecNormalize (rewards)
-    torch_threads: int = 1  # torch intra-op threads of this worker
-    verbose: int = 0  # SB3 verbosity (0 silent)
 
     def __post_init__(self):
         self._check_common("sac")
@@ -255,6 +240,10 @@ def resolve_hyperparameters(algorithm: str, hyperparameters: Any, kind: str) -> 
     filled = {key: value for key, value in table.items()
               if getattr(hyperparameters, key) is None}
     return dataclasses.replace(hyperparameters, **filled)
+
+
+#: The adapter's own fields (:class:`AdapterSettings`); every other field is an SB3 keyword.
+ADAPTER_FIELDS = tuple(f.name for f in dataclasses.fields(AdapterSettings))
 
 
 def algorithm_arguments(hyperparameters: Any) -> dict[str, Any]:
