@@ -329,16 +329,9 @@ class TabularQAgent(Agent):
             agents.append(agent)
         return agents
 
-    def _check_env(self, env: VectorEnv, seeds: list[int]) -> int:
+    def _copies_per_seed(self, env: VectorEnv, seeds: list[int]) -> int:
         require_next_step_autoreset(env)
-        single = env.single_observation_space
-        if single.shape != self.observation_space.shape or type(single) is not type(
-                self.observation_space):
-            raise ConfigError("env.single_observation_space", single,
-                              f"the agent's observation space {self.observation_space}")
-        if env.single_action_space != self.action_space:
-            raise ConfigError("env.single_action_space", env.single_action_space,
-                              f"the agent's action space {self.action_space}")
+        self.check_env(env)
         if not seeds:
             raise ConfigError("seeds", seeds, "at least one seed")
         for i, seed in enumerate(seeds):
@@ -361,8 +354,7 @@ class TabularQAgent(Agent):
                     loggers: Sequence[Logger | None]) -> np.ndarray:
         """Q-tables (len(seeds), S, A) learned in one batched pass (module docstring)."""
         total_steps = check_total_steps(total_steps)
-        copies_per_seed = self._check_env(env, seeds)
-        self.check_env(env)
+        copies_per_seed = self._copies_per_seed(env, seeds)
         hp = self.hyperparameters
         indexer = self.indexer
         groups, copies = len(seeds), env.num_envs

@@ -518,10 +518,15 @@ class Job:
         """The scoring discount of this job's metrics and learning curves."""
         return self.config["gamma"]
 
+    @property
+    def sweep_point(self) -> dict[str, Any]:
+        """This job's point of the sweep grid, ``{label: value}`` (empty without sweeps)."""
+        return self.config["sweep"]
+
     def describe(self) -> str:
         """A short label, e.g. ``needbench/Menu-v0 tabular-q seed=0 task.task_weight=0.5``."""
         point = " ".join(f"{label}={canonical_json(value)}"
-                         for label, value in sorted(self.config["sweep"].items()))
+                         for label, value in sorted(self.sweep_point.items()))
         return " ".join(part for part in (self.task_id, self.agent_name, f"seed={self.seed}",
                                           point) if part)
 
@@ -745,7 +750,7 @@ class _Checker:
                 continue
             checked.add(key)
             point = " ".join(f"{label}={canonical_json(value)}"
-                             for label, value in sorted(job.config["sweep"].items()))
+                             for label, value in sorted(job.sweep_point.items()))
             path = f"agent[{agents[job.agent_name]}].hyperparameters"
             if point:
                 path += f" (at {point})"
