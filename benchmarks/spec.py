@@ -35,6 +35,15 @@ the job's identity in the results store.
 Every problem raises :class:`SuiteError`, naming the file, the key path (e.g.
 ``agent[1].total_steps``), the bad value and what is allowed, with the nearest
 valid name suggested for a misspelt key, task id or agent name.
+
+:func:`parse_suite` checks the file's own structure; :func:`load_suite` (what
+the command line calls) also checks the suite whole with the tasks' and
+agents' own checkers (:func:`check_suite`): every task keyword and value,
+every hyperparameter, every sweep parameter and value, and each (task, agent)
+pair of the grid, so that a typo stops the run before anything is made.
+Arrays of tables under ``extra_needs`` and ``couplings`` declare
+:class:`~needbench.envs.Need` and :class:`~needbench.envs.Coupling` objects
+(:func:`task_arguments`).
 """
 
 from __future__ import annotations
