@@ -405,3 +405,20 @@ def test_ppo_beats_random_on_time_in_band(task, settings, budget, margin):
     learned, floor = time_in_band(agent, task, seeds), time_in_band(random, task, seeds)
     # Common practice, no source: a learner must clear the uniform random floor.
     assert learned >= floor + margin, (learned, floor)
+
+
+def test_per_copy_infos_split_a_batched_info_and_honour_gymnasiums_masks():
+    from needbench.agents.deep import per_copy_infos
+
+    info = {"drive": np.array([1.0, 2.0]), "_drive": np.array([True, False]),
+            "level": np.arange(6.0).reshape(2, 3), "final_obs": np.zeros((2, 3))}
+    first, second = per_copy_infos(info, 2)
+    assert first["drive"] == 1.0 and "drive" not in second
+    np.testing.assert_array_equal(second["level"], [3.0, 4.0, 5.0])
+    assert "final_obs" not in first and not any(key.startswith("_") for key in first)
+    # Source: Gymnasium's SyncVectorEnv info layout (values per key, `_key` masks).
+    sync = gym.vector.SyncVectorEnv([lambda: gym.make("needbench/Menu-v0")] * 2)
+    _, batched = sync.reset(seed=0)
+    single = gym.make("needbench/Menu-v0")
+    _, expected = single.reset(seed=1)
+    assert per_copy_infos(batched, 2)[1]["drive"] == pytest.approx(expected["drive"])

@@ -40,30 +40,25 @@ _FINAL_KEYS = ("final_obs", "final_info")
 
 def _rows(value: Any, copies: int) -> list[Any]:
     array = np.asarray(value)
-    if array.dtype == object or array.ndim > 1:
-        return [array[i] if array.dtype == object else array[i].copy() for i in range(copies)]
-    return array.tolist()
+    if array.dtype == object:
+        return [array[i] for i in range(copies)]
+    return array.tolist() if array.ndim == 1 else list(array.copy())
 
 
 def per_copy_infos(info: Mapping[str, Any], copies: int) -> list[dict[str, Any]]:
     """One info dict per copy from a batched info, as a single env gives it: 0-d
     entries as Python scalars, others as arrays of their own. Gymnasium's ``_key``
     masks are honoured (a copy gets only the keys it has) and dropped."""
-    infos: list[dict[str, Any]] = [{} for _ in range(copies)]
-    for key, value in info.items():
-        if key.startswith("_") or key in _FINAL_KEYS:
-            continue
-        if isinstance(value, Mapping):
-            nested = per_copy_infos(value, copies)
-            present = np.asarray(info.get(f"_{key}", np.ones(copies, dtype=bool)), dtype=bool)
-            for i in np.flatnonzero(present):
-                infos[i][key] = nested[i]
-            continue
-        rows = _rows(value, copies)
+    keys = [key for key in info if not key.startswith("_") and key not in _FINAL_KEYS]
+    columns = [per_copy_infos(info[key], copies) if isinstance(info[key], Mapping)
+               else _rows(info[key], copies) for key in keys]
+    infos = [dict(zip(keys, row, strict=True)) for row in zip(*columns, strict=True)] \
+        if keys else [{} for _ in range(copies)]
+    for key in keys:
         present = info.get(f"_{key}")
-        for i in range(copies):
-            if present is None or present[i]:
-                infos[i][key] = rows[i]
+        if present is not None:
+            for i in np.flatnonzero(~np.asarray(present, dtype=bool)):
+                del infos[i][key]
     return infos
 
 
