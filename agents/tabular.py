@@ -37,7 +37,7 @@ is skipped. Truncation bootstraps from the last observation; termination does no
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
