@@ -1,9 +1,15 @@
 """The protocol every needbench agent follows, and the agent file format.
 
 An agent is built from one copy's observation and action spaces plus keyword
-hyperparameters, learns with ``learn(env, total_steps, seed, logger)``, acts on
-a batch of observations with ``act``, and is written to and read from disk with
-``save`` and ``load``.
+hyperparameters, learns with ``learn(env, total_steps, seed, logger)``, acts
+with ``act`` on a batch of observations (B, ...) or on one observation (then
+it returns one action, as Stable-Baselines3's ``predict`` does), and is
+written to and read from disk with ``save`` and ``load``.
+
+Every agent learns on a task's native vector env: :func:`learning_env` makes
+it with the copies the agent asks for (:meth:`Agent.learning_copies`) and the
+autoreset mode it steps in (:attr:`Agent.autoreset_mode`). ``learn`` also
+takes a single env (a batch of one copy).
 
 Agent file format (version 1)
 -----------------------------
@@ -27,10 +33,13 @@ the saved one did.
 
 Seeding convention
 ------------------
-A learning run with seed ``s`` over C env copies gives copy ``j`` the reset
-seed and the exploration-stream key of :func:`copy_seeds` ``(s, C)[j]``. Copy j
-of seed s therefore sees the same world whether it learns alone or beside
-other seeds in one wide vector env.
+Gymnasium's, everywhere: a vector env reset with ``seed=s`` seeds copy j with
+``s + j`` (:func:`copy_seeds`; ``NeedVectorEnv.reset`` and Gymnasium's
+``SyncVectorEnv`` do exactly this with an int seed). A learning run with seed
+``s`` over C copies resets them with ``seed=s``; a batched learner's
+exploration stream of copy j is keyed by :func:`exploration_keys`, a function
+of ``s + j`` alone. Copy j of seed s therefore sees the same world whether it
+learns alone or beside other seeds in one wide vector env.
 """
 
 from __future__ import annotations
@@ -51,6 +60,7 @@ from gymnasium import spaces
 from gymnasium.vector import AutoresetMode, SyncVectorEnv, VectorEnv
 
 from needbench.envs.errors import ConfigError
+from needbench.envs.streams import key_from
 
 FILE_FORMAT = "needbench-agent"
 FILE_FORMAT_VERSION = 1
@@ -118,6 +128,8 @@ class Agent(abc.ABC):
 
     name: ClassVar[str] = ""
     Hyperparameters: ClassVar[type] = NoHyperparameters
+    #: How the vector env this agent learns on autoresets (Gymnasium's modes).
+    autoreset_mode: ClassVar[AutoresetMode] = AutoresetMode.NEXT_STEP
 
     def __init__(self, observation_space: spaces.Space, action_space: spaces.Space,
                  **hyperparameters: Any):
@@ -135,8 +147,37 @@ class Agent(abc.ABC):
               logger: Logger | None = None) -> Agent:
         """Learn from ``env`` for ``total_steps`` env steps (summed over copies); returns self."""
 
+    def learning_copies(self, env: gym.Env | VectorEnv) -> int:
+        """How many copies of ``env``'s task this agent learns on (:data:`LEARNING_COPIES`)."""
+        return LEARNING_COPIES
+
+    def check_env(self, env: gym.Env | VectorEnv) -> None:
+        """Raise ConfigError if this agent, as configured, cannot learn on ``env``.
+
+        Called by ``learn`` and, on a one-copy env, when a suite is loaded, so
+        that a setting that only fails against a task's spaces (an oversized
+        table, a missing model) is reported before anything runs. Raises
+        :class:`NotApplicableError` for a task outside the agent's reach.
+        """
+        observation_space, action_space = env_spaces(env)
+        if action_space != self.action_space:
+            raise ConfigError("env.action_space", action_space,
+                              f"the agent's action space {self.action_space}")
+        if type(observation_space) is not type(self.observation_space) or getattr(
+                observation_space, "shape", None) != getattr(self.observation_space, "shape",
+                                                             None):
+            raise ConfigError("env.observation_space", observation_space,
+                              f"the agent's observation space {self.observation_space}")
+
+    def act(self, observations: Any, deterministic: bool = True) -> Any:
+        """Actions (B, ...) for a batch of observations (B, ...), or one action for one
+        observation (unbatched, of the observation space's shape)."""
+        batch, single = as_batch(self.observation_space, observations)
+        actions = self._act(batch, deterministic)
+        return actions[0] if single else actions
+
     @abc.abstractmethod
-    def act(self, observations: np.ndarray, deterministic: bool = True) -> np.ndarray:
+    def _act(self, observations: Any, deterministic: bool) -> np.ndarray:
         """Actions (B, ...) for a batch of observations (B, ...)."""
 
     # --- persistence -----------------------------------------------------------
@@ -267,16 +308,49 @@ def decode_space(record: Mapping[str, Any], arrays: Mapping[str, np.ndarray],
 # --- batched stepping --------------------------------------------------------------
 
 
-def as_vector_env(env: gym.Env | VectorEnv) -> VectorEnv:
+#: Copies of the task's native vector env an agent learns on unless it asks otherwise.
+LEARNING_COPIES = 8
+
+
+def make_task_vector_env(task_id: str, copies: int, autoreset_mode: AutoresetMode,
+                         task_kwargs: Mapping[str, Any] | None = None) -> VectorEnv:
+    """The native vector env of a registered needbench task: ``copies`` copies."""
+    return gym.make_vec(task_id, num_envs=copies, vectorization_mode="vector_entry_point",
+                        autoreset_mode=autoreset_mode, **dict(task_kwargs or {}))
+
+
+def learning_env(agent: Agent, task_id: str,
+                 task_kwargs: Mapping[str, Any] | None = None) -> VectorEnv:
+    """The vector env ``agent`` learns on: the task's native vector env with
+    ``agent.learning_copies`` copies, in ``agent.autoreset_mode``."""
+    probe = make_task_vector_env(task_id, 1, agent.autoreset_mode, task_kwargs)
+    copies = agent.learning_copies(probe)
+    if copies == 1:
+        return probe
+    probe.close()
+    return make_task_vector_env(task_id, copies, agent.autoreset_mode, task_kwargs)
+
+
+def env_spaces(env: gym.Env | VectorEnv) -> tuple[spaces.Space, spaces.Space]:
+    """One copy's (observation space, action space) of a single or vector env."""
+    if isinstance(env, VectorEnv):
+        return env.single_observation_space, env.single_action_space
+    return env.observation_space, env.action_space
+
+
+def as_vector_env(env: gym.Env | VectorEnv,
+                  mode: AutoresetMode = AutoresetMode.NEXT_STEP) -> VectorEnv:
     """A vector env view of ``env``: itself if it already is one, else a batch of one copy.
 
-    The single env is wrapped in Gymnasium's SyncVectorEnv (next-step autoreset),
-    so learners have one batched code path. Closing the wrapper closes ``env``.
+    The single env is wrapped in Gymnasium's SyncVectorEnv (autoreset in
+    ``mode``), so learners have one batched code path. Closing the wrapper
+    closes ``env``. A vector env must already autoreset in ``mode``.
     """
     if isinstance(env, VectorEnv):
+        require_autoreset(env, mode)
         return env
     if isinstance(env, gym.Env):
-        return SyncVectorEnv([lambda: env], autoreset_mode=AutoresetMode.NEXT_STEP)
+        return SyncVectorEnv([lambda: env], autoreset_mode=mode)
     raise ConfigError("env", env, "a gymnasium.Env or a gymnasium.vector.VectorEnv")
 
 
@@ -286,12 +360,18 @@ def autoreset_mode(env: VectorEnv) -> AutoresetMode:
     return mode if isinstance(mode, AutoresetMode) else AutoresetMode(mode)
 
 
+def require_autoreset(env: VectorEnv, mode: AutoresetMode) -> None:
+    """Raise unless ``env`` autoresets in ``mode``."""
+    given = autoreset_mode(env)
+    if given != mode:
+        raise ConfigError("env.metadata['autoreset_mode']", given,
+                          f"{mode} (make the vector env with autoreset_mode={mode}, e.g. "
+                          "needbench.agents.base.learning_env(agent, task_id))")
+
+
 def require_next_step_autoreset(env: VectorEnv) -> None:
     """Raise unless ``env`` autoresets in next-step mode (what the batched learners assume)."""
-    mode = autoreset_mode(env)
-    if mode != AutoresetMode.NEXT_STEP:
-        raise ConfigError("env.metadata['autoreset_mode']", mode,
-                          "AutoresetMode.NEXT_STEP (Gymnasium's default)")
+    require_autoreset(env, AutoresetMode.NEXT_STEP)
 
 
 def single_unwrapped(env: gym.Env | VectorEnv) -> Any:
@@ -317,6 +397,37 @@ def batch_size(observations: Any) -> int:
     return int(np.shape(observations)[0])
 
 
+def as_batch(space: spaces.Space, observations: Any) -> tuple[Any, bool]:
+    """(a batch (B, ...) of observations, whether one unbatched observation was given).
+
+    One observation has the space's own shape (a Dict space: every entry has
+    its sub-space's shape); a batch has one more, leading axis. Anything
+    else raises ConfigError naming both forms.
+    """
+    if isinstance(space, spaces.Dict):
+        if not isinstance(observations, Mapping) or set(observations) != set(space.spaces):
+            raise ConfigError("observations", type(observations).__name__,
+                              f"a dict with the keys {sorted(space.spaces)}")
+        depth = {key: np.ndim(observations[key]) - len(space.spaces[key].shape)
+                 for key in space.spaces}
+        if set(depth.values()) == {0}:
+            return {key: np.asarray(value)[None] for key, value in observations.items()}, True
+        if set(depth.values()) == {1}:
+            return {key: np.asarray(value) for key, value in observations.items()}, False
+        shapes = {key: np.shape(value) for key, value in observations.items()}
+        raise ConfigError("observations", shapes, "one observation, "
+                          f"{ {k: s.shape for k, s in space.spaces.items()} }, or a batch of "
+                          "them with one leading axis")
+    shape = tuple(space.shape) if space.shape is not None else ()
+    array = np.asarray(observations)
+    if array.ndim == len(shape) and array.shape == shape:
+        return array[None], True
+    if array.ndim == len(shape) + 1 and array.shape[1:] == shape:
+        return array, False
+    raise ConfigError("observations", f"an array of shape {array.shape}",
+                      f"one observation of shape {shape} or a batch of shape (B, *{shape})")
+
+
 # --- seeding ------------------------------------------------------------------------
 
 
@@ -334,18 +445,22 @@ def check_total_steps(total_steps: Any) -> int:
     return int(total_steps)
 
 
-def copy_seeds(seed: int, copies: int) -> tuple[list[int], np.ndarray]:
-    """Reset seeds (C ints < 2**31) and exploration-stream keys (C uint64) of C copies.
+#: Second entropy word of the exploration streams, so they never equal an env's stream.
+EXPLORATION_STREAM = 0x65_78_70_6C  # "expl" in ASCII
 
-    Both are drawn from ``numpy.random.SeedSequence(seed, spawn_key=(j,))`` for
-    copy j, so they depend on (seed, j) alone and distinct seeds never share
-    env streams (unlike the ``seed + j`` convention).
+
+def copy_seeds(seed: int, copies: int) -> list[int]:
+    """The reset seeds of C copies run with ``seed``: ``seed + j`` for copy j.
+
+    Gymnasium's convention, which ``VectorEnv.reset(seed=seed)`` applies
+    itself; this function is for code that must name the seeds (a list of
+    seeds for several runs side by side, the exploration streams).
     """
     seed = check_seed("seed", seed)
-    reset_seeds = []
-    keys = np.empty(copies, dtype=np.uint64)
-    for j in range(copies):
-        words = np.random.SeedSequence(seed, spawn_key=(j,)).generate_state(3, dtype=np.uint32)
-        reset_seeds.append(int(words[0] >> np.uint32(1)))
-        keys[j] = (np.uint64(words[1]) << np.uint64(32)) | np.uint64(words[2])
-    return reset_seeds, keys
+    return [seed + j for j in range(int(copies))]
+
+
+def exploration_keys(seed: int, copies: int) -> np.ndarray:
+    """(C,) uint64 keys of the copies' exploration streams: copy j's from ``seed + j`` alone."""
+    return np.array([key_from(np.random.default_rng([copy_seed, EXPLORATION_STREAM]))
+                     for copy_seed in copy_seeds(seed, copies)], dtype=np.uint64)

@@ -510,9 +510,9 @@ class SetpointController(Agent):
         self.rule = rule_for(core, self.action_space, self.hyperparameters, seed)
         return self
 
-    def act(self, observations: Any, deterministic: bool = True) -> np.ndarray:
+    def _act(self, observations: Any, deterministic: bool) -> np.ndarray:
         """Actions (B, ...) for observations (B, D) (or a dict with ``internal`` and
-        ``world``); one observation (D,) gives B = 1.
+        ``world``).
 
         ``deterministic`` is ignored: the rule is deterministic, apart from the
         local-view rule's wandering when no source is in sight.
@@ -523,11 +523,6 @@ class SetpointController(Agent):
             observations = np.concatenate([np.asarray(observations["internal"]),
                                            np.asarray(observations["world"])], axis=1)
         observations = np.asarray(observations, dtype=np.float64)
-        if observations.ndim == 1:  # one observation: a batch of one
-            observations = observations[None]
-        if observations.ndim != 2:
-            raise ConfigError("observations.shape", observations.shape,
-                              "(B, D), a batch of flat observations, or one (D,)")
         deviation = observations[:, :self.rule.num_needs]
         actions = self.rule.act(observations, deviation)
         if isinstance(self.action_space, spaces.Discrete):

@@ -460,7 +460,7 @@ class ExactPlannerAgent(Agent):
         self._table = model.table
         return self
 
-    def act(self, observations: np.ndarray, deterministic: bool = True) -> np.ndarray:
+    def _act(self, observations: np.ndarray, deterministic: bool) -> np.ndarray:
         """Greedy actions (B,) (the optimal policy is deterministic; so is ``act``)."""
         if self.policy is None or self._state_of is None:
             raise RuntimeError("call learn(env) (or load a saved planner) before act()")

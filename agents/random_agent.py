@@ -41,7 +41,7 @@ class RandomAgent(Agent):
         self._reseed(check_seed("seed", seed))
         return self
 
-    def act(self, observations: Any, deterministic: bool = True) -> np.ndarray:
+    def _act(self, observations: Any, deterministic: bool) -> np.ndarray:
         count = batch_size(observations)
         space = self._batched_spaces.get(count)
         if space is None:

@@ -20,9 +20,14 @@ the same pass (:meth:`TabularQAgent.learn_many`): Q has shape (seeds, S, A) and
 seed g owns copies g*C .. g*C+C-1. When several copies of one seed update the
 same (state, action) in one step, their TD errors are averaged, so the step
 size does not grow with the number of copies. Exploration draws come from
-per-copy counter-based streams (needbench.envs.streams), and copies are seeded
-by :func:`needbench.agents.base.copy_seeds`, so seed g learns the same Q-table
-whether it learns alone or beside other seeds.
+per-copy counter-based streams (needbench.envs.streams, keyed by
+:func:`needbench.agents.base.exploration_keys`), and seed g's copies are reset
+with :func:`needbench.agents.base.copy_seeds` (seed + j), so seed g learns the
+same Q-table whether it learns alone or beside other seeds.
+
+Learning curves: at each episode's end the scalars of
+:mod:`needbench.agents.curves` (``episode/return``, ``episode/length``,
+``stability/...`` with the logger's scoring discount), at the seed's step count.
 
 Vector autoreset is Gymnasium's next-step mode: the step after a copy's
 episode ends only resets it; that transition (last observation -> first one)
@@ -32,7 +37,7 @@ is skipped. Truncation bootstraps from the last observation; termination does no
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -49,9 +54,11 @@ from needbench.agents.base import (
     check_seed,
     check_total_steps,
     copy_seeds,
+    exploration_keys,
     require_next_step_autoreset,
     task_core,
 )
+from needbench.agents.curves import EpisodeStability, scoring_discount
 from needbench.envs.errors import ConfigError, check_choice, check_finite, check_range
 from needbench.envs.streams import CopyStreams
 
@@ -229,71 +236,25 @@ def internal_dimensions_of(env: gym.Env | VectorEnv) -> int:
     return 0
 
 
-# --- learning curves ---------------------------------------------------------------
+def log_finished_episodes(curves: EpisodeStability, ended: np.ndarray,
+                          loggers: Sequence[Logger | None], owner: np.ndarray, steps: int,
+                          need_names: Sequence[str] | None) -> None:
+    """Log the figures of every copy whose episode ended, to the logger of its seed."""
+    for i in np.flatnonzero(ended):
+        logger = loggers[owner[i]]
+        if logger is None:
+            continue
+        for tag, value in curves.figures(int(i)).scalars(need_names).items():
+            logger.log_scalar(tag, value, steps)
 
 
-class EpisodeCurves:
-    """Running sums of each copy's current episode, logged when the episode ends.
-
-    Scalars (one point per finished episode, at the seed's step count):
-    ``charts/episodic_return`` (undiscounted), ``charts/episodic_length``, and
-    when the env's info carries them ``charts/discounted_drive`` = sum_t
-    gamma^t D(h_t) over t = 0..T, ``charts/time_in_band`` = share of steps
-    1..T inside the band, ``charts/deviation/<need>`` = mean |deviation| (band
-    units) over steps 1..T.
-    """
-
-    def __init__(self, copies: int, gamma: float, need_names: Sequence[str] | None):
-        self.gamma = gamma
-        self.need_names = need_names
-        self.ret = np.zeros(copies)
-        self.length = np.zeros(copies, dtype=np.int64)
-        self.drive = np.zeros(copies)
-        self.discount = np.ones(copies)
-        self.in_band = np.zeros(copies)
-        self.deviation: np.ndarray | None = None
-
-    def begin(self, mask: np.ndarray, info: Mapping[str, Any]) -> None:
-        self.ret[mask] = 0.0
-        self.length[mask] = 0
-        self.in_band[mask] = 0.0
-        self.discount[mask] = self.gamma
-        self.drive[mask] = np.asarray(info["drive"], np.float64)[mask] if "drive" in info else 0.0
-        if self.deviation is not None:
-            self.deviation[mask] = 0.0
-
-    def step(self, mask: np.ndarray, reward: np.ndarray, info: Mapping[str, Any]) -> None:
-        self.ret += np.where(mask, reward, 0.0)
-        self.length += mask
-        if "drive" in info:
-            self.drive += np.where(mask, self.discount * np.asarray(info["drive"], np.float64), 0)
-            self.discount = np.where(mask, self.discount * self.gamma, self.discount)
-        if "in_band" in info:
-            self.in_band += mask & np.asarray(info["in_band"], bool)
-        if "deviation" in info:
-            deviation = np.abs(np.asarray(info["deviation"], np.float64))
-            if self.deviation is None:
-                self.deviation = np.zeros_like(deviation)
-            self.deviation += np.where(mask[:, None], deviation, 0.0)
-
-    def log(self, ended: np.ndarray, loggers: Sequence[Logger | None], owner: np.ndarray,
-            steps: int, info: Mapping[str, Any]) -> None:
-        for i in np.flatnonzero(ended):
-            logger = loggers[owner[i]]
-            if logger is None:
-                continue
-            length = max(int(self.length[i]), 1)
-            logger.log_scalar("charts/episodic_return", float(self.ret[i]), steps)
-            logger.log_scalar("charts/episodic_length", float(self.length[i]), steps)
-            if "drive" in info:
-                logger.log_scalar("charts/discounted_drive", float(self.drive[i]), steps)
-            if "in_band" in info:
-                logger.log_scalar("charts/time_in_band", float(self.in_band[i]) / length, steps)
-            if self.deviation is not None:
-                names = self.need_names or [str(k) for k in range(self.deviation.shape[1])]
-                for k, need in enumerate(names):
-                    logger.log_scalar(f"charts/deviation/{need}",
-                                      float(self.deviation[i, k]) / length, steps)
+def shared_discount(loggers: Sequence[Logger | None]) -> float:
+    """The scoring discount of the loggers (one for all seeds learning side by side)."""
+    discounts = {scoring_discount(logger) for logger in loggers if logger is not None}
+    if len(discounts) > 1:
+        raise ConfigError("loggers.discount", sorted(discounts),
+                          "one scoring discount for all seeds of one pass")
+    return discounts.pop() if discounts else scoring_discount(None)
 
 
 # --- the agent ------------------------------------------------------------------------
@@ -368,16 +329,9 @@ class TabularQAgent(Agent):
             agents.append(agent)
         return agents
 
-    def _check_env(self, env: VectorEnv, seeds: list[int]) -> int:
+    def _copies_per_seed(self, env: VectorEnv, seeds: list[int]) -> int:
         require_next_step_autoreset(env)
-        single = env.single_observation_space
-        if single.shape != self.observation_space.shape or type(single) is not type(
-                self.observation_space):
-            raise ConfigError("env.single_observation_space", single,
-                              f"the agent's observation space {self.observation_space}")
-        if env.single_action_space != self.action_space:
-            raise ConfigError("env.single_action_space", env.single_action_space,
-                              f"the agent's action space {self.action_space}")
+        self.check_env(env)
         if not seeds:
             raise ConfigError("seeds", seeds, "at least one seed")
         for i, seed in enumerate(seeds):
@@ -389,33 +343,33 @@ class TabularQAgent(Agent):
                               f"a multiple of {len(seeds)}, the number of seeds")
         return env.num_envs // len(seeds)
 
+    def check_env(self, env: gym.Env | VectorEnv) -> None:
+        """The spaces must be the agent's, and the table must fit (:data:`MAX_TABLE_ENTRIES`)."""
+        super().check_env(env)
+        if self.indexer is None:
+            # A Box observation whose internal part was not given: ask the task.
+            self._build_indexer(internal_dimensions_of(env))
+
     def _q_learning(self, env: VectorEnv, total_steps: int, seeds: list[int],
                     loggers: Sequence[Logger | None]) -> np.ndarray:
         """Q-tables (len(seeds), S, A) learned in one batched pass (module docstring)."""
         total_steps = check_total_steps(total_steps)
-        copies_per_seed = self._check_env(env, seeds)
-        if self.indexer is None:
-            # A Box observation whose internal part was not given: ask the task.
-            self._build_indexer(internal_dimensions_of(env))
+        copies_per_seed = self._copies_per_seed(env, seeds)
         hp = self.hyperparameters
         indexer = self.indexer
         groups, copies = len(seeds), env.num_envs
         states, actions = indexer.num_states, self.num_actions
         owner = np.repeat(np.arange(groups), copies_per_seed)
         base = owner * states  # row offset of each copy's seed in the flattened table
-        reset_seeds: list[int] = []
-        keys = []
-        for seed in seeds:
-            seeds_of_copies, keys_of_copies = copy_seeds(seed, copies_per_seed)
-            reset_seeds += seeds_of_copies
-            keys.append(keys_of_copies)
-        streams = CopyStreams(np.concatenate(keys))
+        reset_seeds = [s for seed in seeds for s in copy_seeds(seed, copies_per_seed)]
+        streams = CopyStreams(np.concatenate([exploration_keys(seed, copies_per_seed)
+                                              for seed in seeds]))
 
         q = np.full((groups * states, actions), float(hp.initial_value))
         flat_q = q.reshape(-1)
         visits = np.zeros(groups * states * actions, np.int64) if hp.visit_exponent > 0 else None
-        core = task_core(env)
-        curves = EpisodeCurves(copies, hp.gamma, getattr(core, "need_names", None))
+        need_names = getattr(task_core(env), "need_names", None)
+        curves = EpisodeStability(copies, shared_discount(loggers))
         logging = any(logger is not None for logger in loggers)
 
         observations, info = env.reset(seed=reset_seeds)
@@ -448,7 +402,8 @@ class TabularQAgent(Agent):
             curves.step(real, reward, info)
             ended = real & (terminated | truncated)
             if logging and ended.any():
-                curves.log(ended, loggers, owner, (iteration + 1) * copies_per_seed, info)
+                log_finished_episodes(curves, ended, loggers, owner,
+                                      (iteration + 1) * copies_per_seed, need_names)
             if resetting.any():
                 curves.begin(resetting, info)
             state = next_state
@@ -488,7 +443,7 @@ class TabularQAgent(Agent):
             raise RuntimeError("call learn() (or load a saved agent) before act()")
         return np.argmax(self.q[self.indexer(observations)], axis=1) + int(self.action_space.start)
 
-    def act(self, observations: Any, deterministic: bool = True) -> np.ndarray:
+    def _act(self, observations: Any, deterministic: bool) -> np.ndarray:
         """Greedy actions, or with ``deterministic=False`` the final exploration policy
         (epsilon_end-greedy or softmax) drawn from a generator seeded by ``learn``."""
         if deterministic or self.q is None:

@@ -20,9 +20,9 @@ episode of T steps:
 
 Seeding: episode e of an evaluation with seed s resets with
 :func:`evaluation_seeds` ``(s, N)[e]``, drawn from its own
-``numpy.random.SeedSequence`` stream, so evaluation worlds never repeat the
-learning copies' worlds (:func:`needbench.agents.base.copy_seeds`) and do not
-depend on how episodes are batched. Agents act with ``deterministic=True``.
+``numpy.random.SeedSequence`` stream, so evaluation worlds do not repeat the
+learning copies' worlds (seed + j, :func:`needbench.agents.base.copy_seeds`)
+and do not depend on how episodes are batched. Agents act with ``deterministic=True``.
 
 Three ways to step, one result: ``"vector"`` (the task's native vector env,
 the default and the fastest: all episodes side by side), ``"sync"``
@@ -127,7 +127,7 @@ def rollout_single(env: gym.Env, agent: Agent, seed: int,
     steps: list[dict[str, Any]] = []
     terminated = truncated = False
     while not (terminated or truncated):
-        action = np.asarray(agent.act(_batch_of_one(observation), deterministic=True))[0]
+        action = np.asarray(agent.act(observation, deterministic=True))
         observation, reward, terminated, truncated, info = env.step(action)
         steps.append({**{key: np.array(value, copy=True) for key, value in info.items()},
                       "action": action, "reward": reward})
@@ -135,12 +135,6 @@ def rollout_single(env: gym.Env, agent: Agent, seed: int,
             on_step(env)
     columns = {key: np.stack([np.asarray(step[key]) for step in steps]) for key in steps[0]}
     return _trace_from_columns(start, columns, band, terminated, truncated)
-
-
-def _batch_of_one(observation: Any) -> Any:
-    if isinstance(observation, Mapping):
-        return {key: np.asarray(value)[None] for key, value in observation.items()}
-    return np.asarray(observation)[None]
 
 
 def rollout_vector(env: VectorEnv, agent: Agent, seeds: Sequence[int]) -> list[Trace]:

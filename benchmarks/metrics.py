@@ -30,9 +30,13 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 
+from needbench.agents.curves import EpisodeFigures, check_discount, stability_of_episode
 from needbench.envs.errors import ConfigError
 
 Trace = Mapping[str, np.ndarray]
+
+#: Any discount: it does not enter the undiscounted figures read with it.
+DEFAULT_GAMMA = 1.0
 
 
 # ----------------------------------------------------------------------------
@@ -105,9 +109,7 @@ def deviation_norm(trace: Trace) -> np.ndarray:
 
 
 def _check_gamma(gamma: float) -> float:
-    if isinstance(gamma, bool) or not isinstance(gamma, (int, float)) or not 0.0 < gamma <= 1.0:
-        raise ConfigError("gamma", gamma, "a discount factor in (0, 1]")
-    return float(gamma)
+    return check_discount("gamma", gamma)
 
 
 def _discount_weights(steps: int, gamma: float) -> np.ndarray:
@@ -146,14 +148,24 @@ def discounted_return(trace: Trace, gamma: float) -> float:
 # Stability: drive and deviation
 # ----------------------------------------------------------------------------
 
+def episode_stability(trace: Trace, gamma: float) -> EpisodeFigures:
+    """Return, length, discounted drive, time in band and per-need deviation of the trace,
+    summed by the one accumulator training curves use too
+    (:func:`needbench.agents.curves.stability_of_episode`; its docstring holds the convention).
+    """
+    offset, band = _offset(trace)
+    return stability_of_episode(_per_step(trace, "reward"), _drive(trace),
+                                np.all(np.abs(offset[1:]) <= band, axis=-1),
+                                offset[1:] / band, _check_gamma(gamma))
+
+
 def discounted_drive(trace: Trace, gamma: float) -> float:
     """Discounted drive, sum_{t=0}^{T-1} gamma^t D(h_t), in drive units; lower is better.
 
     Starts at the reset state h_0 and stops before the final state h_T, the
-    states in which the agent chose an action.
+    states in which the agent chose an action (see :func:`episode_stability`).
     """
-    drive = _drive(trace)[:-1]
-    return float(np.sum(_discount_weights(drive.shape[0], gamma) * drive))
+    return episode_stability(trace, gamma).discounted_drive
 
 
 def normalised_discounted_drive(trace: Trace, gamma: float) -> float:
@@ -163,9 +175,8 @@ def normalised_discounted_drive(trace: Trace, gamma: float) -> float:
     average of D(h_0)..D(h_{T-1}) and comparable across episode lengths
     (at gamma = 1 it is the plain mean).
     """
-    drive = _drive(trace)[:-1]
-    weights = _discount_weights(drive.shape[0], gamma)
-    return float(np.sum(weights * drive) / np.sum(weights))
+    weights = _discount_weights(episode_length(trace), gamma)
+    return discounted_drive(trace, gamma) / float(np.sum(weights))
 
 
 def discounted_deviation(trace: Trace, gamma: float) -> float:
@@ -190,14 +201,12 @@ def mean_absolute_deviation(trace: Trace) -> np.ndarray:
 
     The reset state h_0 is left out: it was not the agent's doing.
     """
-    return np.mean(np.abs(band_deviation(trace)[1:]), axis=0)
+    return episode_stability(trace, DEFAULT_GAMMA).deviation
 
 
 def time_in_band(trace: Trace) -> float:
     """Share of steps t = 1..T with every need in its band, |h_t - h*_t| <= band; in [0, 1]."""
-    offset, band = _offset(trace)
-    inside = np.all(np.abs(offset[1:]) <= band, axis=-1)
-    return float(np.mean(inside))
+    return episode_stability(trace, DEFAULT_GAMMA).time_in_band
 
 
 def overconsumption(trace: Trace) -> float:
@@ -301,7 +310,8 @@ def episode_metrics(trace: Trace, gamma: float,
     named ``need_0``, ``need_1``... when ``need_names`` is not given.
     """
     gamma = _check_gamma(gamma)
-    per_need = mean_absolute_deviation(trace)
+    stability = episode_stability(trace, gamma)
+    per_need = stability.deviation
     if need_names is None:
         need_names = [f"need_{i}" for i in range(per_need.shape[0])]
     if len(need_names) != per_need.shape[0]:
@@ -311,11 +321,11 @@ def episode_metrics(trace: Trace, gamma: float,
         "length": float(episode_length(trace)),
         "return": episode_return(trace),
         "discounted_return": discounted_return(trace, gamma),
-        "discounted_drive": discounted_drive(trace, gamma),
+        "discounted_drive": stability.discounted_drive,
         "normalised_discounted_drive": normalised_discounted_drive(trace, gamma),
         "discounted_deviation": discounted_deviation(trace, gamma),
         "normalised_discounted_deviation": normalised_discounted_deviation(trace, gamma),
-        "time_in_band": time_in_band(trace),
+        "time_in_band": stability.time_in_band,
         "overconsumption": overconsumption(trace),
         "survived": float(survived(trace)),
     }

@@ -15,10 +15,14 @@ without a finite model), the job comes back :class:`NotApplicable`: the
 driver lists it and does not record it. Any other error is the job's failure
 and is recorded as such, with its traceback.
 
-The learning env: agents whose hyperparameters have an ``n_envs`` field (the
-Stable-Baselines3 adapters) make their own env copies and get a single env;
-every other agent learns on the task's native vector env with
-:data:`LEARNING_COPIES` copies (``total_steps`` counts steps over all copies).
+The learning env: every agent learns on the task's native vector env, made by
+:func:`needbench.agents.base.learning_env` with the copies the agent asks for
+and in its autoreset mode (``total_steps`` counts steps over all copies). The
+copies are reset with the job's seed (copy j: seed + j, Gymnasium's
+convention); evaluation episodes use seeds of their own
+(:func:`needbench.benchmarks.evaluate.evaluation_seeds`). The logger hands the
+suite's scoring discount (``gamma``) to the agent, so its learning curves and
+the stored metrics share one definition (:mod:`needbench.agents.curves`).
 
 :func:`run_suite` is the driver. It skips jobs whose hash the store already
 holds as done (so a rerun resumes an interrupted sweep), runs the rest with
@@ -41,7 +45,6 @@ Backends:
 
 from __future__ import annotations
 
-import dataclasses
 import importlib
 import math
 import multiprocessing
@@ -60,9 +63,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TextIO
 
-import gymnasium as gym
-
-from needbench.agents.base import NotApplicableError
+from needbench.agents.base import (
+    NotApplicableError,
+    env_spaces,
+    learning_env,
+    make_task_vector_env,
+)
 from needbench.benchmarks.evaluate import MODES, evaluate, evaluation_metrics
 from needbench.benchmarks.metrics import summarise
 from needbench.benchmarks.spec import Job, Suite, expand
@@ -71,9 +77,6 @@ from needbench.benchmarks.tensorboard import RunLogger, run_folder_name
 from needbench.envs.errors import ConfigError, check_choice
 
 BACKENDS = ("local", "ray")
-
-#: Copies of the task's native vector env that agents without ``n_envs`` learn on.
-LEARNING_COPIES = 8
 
 #: Environment variables that cap the threads of BLAS and OpenMP libraries.
 _THREAD_VARIABLES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
@@ -127,22 +130,6 @@ def limit_threads() -> None:
         torch.set_num_threads(1)
 
 
-def make_learning_env(task_id: str, task_kwargs: dict[str, Any],
-                      agent_class: type) -> gym.Env | gym.vector.VectorEnv:
-    """The env an agent learns on (see the module docstring)."""
-    fields = {f.name for f in dataclasses.fields(agent_class.Hyperparameters)}
-    if "n_envs" in fields:
-        return gym.make(task_id, **task_kwargs)
-    return gym.make_vec(task_id, num_envs=LEARNING_COPIES, vectorization_mode="vector_entry_point",
-                        **task_kwargs)
-
-
-def _spaces(env: gym.Env | gym.vector.VectorEnv):
-    if isinstance(env, gym.vector.VectorEnv):
-        return env.single_observation_space, env.single_action_space
-    return env.observation_space, env.action_space
-
-
 @dataclass(frozen=True)
 class NotApplicable:
     """What a job returns when its agent does not apply to its task (not stored).
@@ -185,26 +172,26 @@ def run_job(config: dict[str, Any], job_hash: str,
     logger: RunLogger | None = None
     env = None
     try:
-        task_id = config["task"]["id"]
-        task_kwargs = dict(config["task"]["kwargs"])
-        agent_config = config["agent"]
-        env = make_learning_env(task_id, task_kwargs, AGENTS[agent_config["name"]])
-        observation_space, action_space = _spaces(env)
+        job = Job(config)
+        agent_class = AGENTS[job.agent_name]
+        arguments = job.task_arguments
+        spaces_env = make_task_vector_env(job.task_id, 1, agent_class.autoreset_mode, arguments)
         try:
-            agent = make_agent(agent_config["name"], observation_space, action_space,
-                               **agent_config["hyperparameters"])
+            agent = make_agent(job.agent_name, *env_spaces(spaces_env),
+                               **job.agent_hyperparameters)
         except NotApplicableError as rejection:
             return NotApplicable(job_hash, config, str(rejection), rejection.allowed)
+        finally:
+            spaces_env.close()
         limit_threads()  # again: building a deep agent may have loaded torch
+        env = learning_env(agent, job.task_id, arguments)
         folder = None
         if settings.tensorboard_root is not None:
-            folder = Path(settings.tensorboard_root) / run_folder_name(
-                Job(config).describe(), job_hash)
-        # Made after the agent, so that a deep agent's torch also writes the events.
-        logger = RunLogger(folder)
+            folder = Path(settings.tensorboard_root) / run_folder_name(job.describe(), job_hash)
+        logger = RunLogger(folder, discount=job.gamma)
         need_names = list(env.unwrapped.core.need_names)
         try:
-            agent.learn(env, int(agent_config["total_steps"]), int(config["seed"]), logger)
+            agent.learn(env, job.total_steps, job.seed, logger)
         except NotApplicableError as rejection:
             if logger.tensorboard_dir is not None:
                 logger.close()
@@ -212,10 +199,10 @@ def run_job(config: dict[str, Any], job_hash: str,
             return NotApplicable(job_hash, config, str(rejection), rejection.allowed)
         env.close()
         env = None
-        traces = evaluate(agent, task_id, task_kwargs, int(config["eval_episodes"]),
-                          int(config["seed"]), mode=settings.evaluation_mode)
-        episodes = evaluation_metrics(traces, float(config["gamma"]), need_names)
-        logger.log_evaluation(summarise(episodes), int(agent_config["total_steps"]))
+        traces = evaluate(agent, job.task_id, arguments, job.eval_episodes, job.seed,
+                          mode=settings.evaluation_mode)
+        episodes = evaluation_metrics(traces, job.gamma, need_names)
+        logger.log_evaluation(summarise(episodes), job.total_steps)
         status, error = "done", None
     except Exception:
         status, error, episodes, traces = "failed", traceback.format_exc(), [], []

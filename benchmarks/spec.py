@@ -35,6 +35,15 @@ the job's identity in the results store.
 Every problem raises :class:`SuiteError`, naming the file, the key path (e.g.
 ``agent[1].total_steps``), the bad value and what is allowed, with the nearest
 valid name suggested for a misspelt key, task id or agent name.
+
+:func:`parse_suite` checks the file's own structure; :func:`load_suite` (what
+the command line calls) also checks the suite whole with the tasks' and
+agents' own checkers (:func:`check_suite`): every task keyword and value,
+every hyperparameter, every sweep parameter and value, and each (task, agent)
+pair of the grid, so that a typo stops the run before anything is made.
+Arrays of tables under ``extra_needs`` and ``couplings`` declare
+:class:`~needbench.envs.Need` and :class:`~needbench.envs.Coupling` objects
+(:func:`task_arguments`).
 """
 
 from __future__ import annotations
@@ -46,17 +55,20 @@ import hashlib
 import itertools
 import json
 import math
+import re
 import tomllib
 from collections.abc import Collection, Mapping
 from dataclasses import dataclass, field
+from dataclasses import fields as dataclass_fields
 from pathlib import Path
 from typing import Any
 
+from needbench.agents.curves import DEFAULT_DISCOUNT
 from needbench.envs.errors import ConfigError
 
 SWEEP_TARGETS = ("task", "agent", "gamma")
 DEFAULT_EVAL_EPISODES = 10
-DEFAULT_GAMMA = 0.99
+DEFAULT_GAMMA = DEFAULT_DISCOUNT
 
 
 class SuiteError(ConfigError):
@@ -487,12 +499,87 @@ class Job:
     def seed(self) -> int:
         return self.config["seed"]
 
+    @property
+    def task_kwargs(self) -> dict[str, Any]:
+        """The task's keyword arguments as the suite wrote them (plain TOML values)."""
+        return self.config["task"]["kwargs"]
+
+    @property
+    def task_arguments(self) -> dict[str, Any]:
+        """The task's keyword arguments ready for ``gymnasium.make`` (:func:`task_arguments`)."""
+        return task_arguments(self.task_kwargs)
+
+    @property
+    def agent_hyperparameters(self) -> dict[str, Any]:
+        return self.config["agent"]["hyperparameters"]
+
+    @property
+    def total_steps(self) -> int:
+        """The learning budget in env steps (summed over copies)."""
+        return self.config["agent"]["total_steps"]
+
+    @property
+    def eval_episodes(self) -> int:
+        return self.config["eval_episodes"]
+
+    @property
+    def gamma(self) -> float:
+        """The scoring discount of this job's metrics and learning curves."""
+        return self.config["gamma"]
+
+    @property
+    def sweep_point(self) -> dict[str, Any]:
+        """This job's point of the sweep grid, ``{label: value}`` (empty without sweeps)."""
+        return self.config["sweep"]
+
     def describe(self) -> str:
         """A short label, e.g. ``needbench/Menu-v0 tabular-q seed=0 task.task_weight=0.5``."""
         point = " ".join(f"{label}={canonical_json(value)}"
-                         for label, value in sorted(self.config["sweep"].items()))
+                         for label, value in sorted(self.sweep_point.items()))
         return " ".join(part for part in (self.task_id, self.agent_name, f"seed={self.seed}",
                                           point) if part)
+
+
+#: Task keywords whose suite form is an array of tables, and what each table becomes.
+DECLARED_KWARGS = {"extra_needs": "Need", "couplings": "Coupling"}
+
+
+def task_arguments(kwargs: Mapping[str, Any]) -> dict[str, Any]:
+    """A task's suite keywords as ``gymnasium.make`` takes them: each table of
+    ``extra_needs`` becomes a :class:`~needbench.envs.Need` and each table of
+    ``couplings`` a :class:`~needbench.envs.Coupling` (their fields as keys).
+
+    Raises ConfigError (path ``extra_needs[i].<field>``) for an unknown field.
+    """
+    import needbench.envs as envs
+
+    arguments = dict(kwargs)
+    for key, class_name in DECLARED_KWARGS.items():
+        tables = arguments.get(key)
+        if not isinstance(tables, list) or not all(isinstance(t, Mapping) for t in tables):
+            continue
+        declared = getattr(envs, class_name)
+        names = [f.name for f in dataclass_fields(declared)]
+        items = []
+        for i, table in enumerate(tables):
+            for field_name, value in table.items():
+                if field_name not in names:
+                    raise ConfigError(f"{key}[{i}].{field_name}", value,
+                                      f"a field of {class_name}: {', '.join(names)}"
+                                      + _hint(field_name, names))
+            try:
+                items.append(declared(**table))
+            except TypeError as error:  # a required field is missing
+                raise ConfigError(f"{key}[{i}]", dict(table),
+                                  f"a table with the fields {class_name} requires ({error})"
+                                  ) from error
+        arguments[key] = tuple(items)
+    return arguments
+
+
+def _hint(word: str, choices: Collection[str]) -> str:
+    near = _nearest(word, choices)
+    return f" (did you mean {near!r}?)" if near else ""
 
 
 def _resolve(suite: Suite, task: TaskSpec, agent: AgentSpec, seed: int,
@@ -539,6 +626,210 @@ def expand(suite: Suite) -> list[Job]:
                     point = tuple(zip(sweeps, values, strict=True))
                     jobs.append(Job(_resolve(suite, task, agent, seed, point)))
     return jobs
+
+
+# ----------------------------------------------------------------------------
+# Checking a suite whole, before anything runs
+# ----------------------------------------------------------------------------
+
+def _env_class(task_id: str) -> type | None:
+    import importlib
+
+    import gymnasium as gym
+
+    entry_point = gym.spec(task_id).entry_point
+    if not isinstance(entry_point, str):
+        return entry_point if isinstance(entry_point, type) else None
+    module_name, _, class_name = entry_point.partition(":")
+    return getattr(importlib.import_module(module_name), class_name, None)
+
+
+#: A drive names its parameters ``drive.<name>`` (or the drive, for unknown names).
+_DRIVE_PATH = re.compile(r"^drive(?:\.(\w+)| \(.*\))$")
+
+
+def _keyword_path(path: str, kwargs: Mapping[str, Any]) -> str:
+    """The suite keyword behind a task's error path: a drive parameter is under
+    ``drive_params`` in the suite."""
+    match = _DRIVE_PATH.match(path)
+    if match and "drive_params" in kwargs:
+        return "drive_params" + (f".{match.group(1)}" if match.group(1) else "")
+    return path
+
+
+class _Checker:
+    """Runs each task's and agent's own checks on a parsed suite; raises SuiteError."""
+
+    def __init__(self, suite: Suite):
+        self.suite = suite
+        self.source = suite.source
+
+    def error(self, path: str, value: Any, allowed: str) -> SuiteError:
+        return SuiteError(self.source, path, value, allowed)
+
+    def keyword_names(self, task_id: str, kwargs: Mapping[str, Any], path: str) -> None:
+        """Unknown keywords, with the task's own argument checker (``split_arguments``)."""
+        from needbench.envs.task import split_arguments
+
+        env_class = _env_class(task_id)
+        world_class = getattr(env_class, "world_cls", None)
+        if world_class is None:
+            return
+        try:
+            split_arguments(world_class, getattr(env_class, "defaults", {}), kwargs)
+        except ConfigError as error:
+            raise self.error(_join(path, error.path), error.value, error.allowed) from None
+        except TypeError as error:  # a keyword of the wrong kind for the config dataclass
+            raise self.error(path, dict(kwargs), f"keywords the task accepts ({error})") from None
+
+    def make_task(self, task_id: str, kwargs: Mapping[str, Any], path: str,
+                  blame: str | None = None, blamed: Any = None) -> None:
+        """Build the task once with these keywords: its constructor checks every value.
+
+        ``blame`` names the suite entry to report (a sweep value, ``blamed``);
+        by default the keyword the task names, under ``path``.
+        """
+        import gymnasium as gym
+
+        try:
+            arguments = task_arguments(kwargs)
+            gym.make(task_id, **arguments).close()
+        except ConfigError as error:
+            where = _keyword_path(error.path, kwargs)
+            if blame is None:
+                raise self.error(_join(path, where), error.value, error.allowed) from None
+            raise self.error(blame, error.value, f"{error.allowed} ({task_id}: {where})") from None
+        except Exception as error:  # a value the task's constructor could not use at all
+            raise self.error(blame or path, dict(kwargs) if blame is None else blamed,
+                             f"keywords {task_id} accepts ({type(error).__name__}: {error})"
+                             ) from None
+
+    def hyperparameters(self, name: str, given: Mapping[str, Any], path: str,
+                        blame: str | None = None) -> None:
+        """The agent's own hyperparameter dataclass, with its checks."""
+        from needbench.agents.base import build_hyperparameters
+        from needbench.agents.registry import AGENTS
+
+        try:
+            build_hyperparameters(AGENTS[name].Hyperparameters, given, name)
+        except ConfigError as error:
+            field_path = error.path.removeprefix(f"{name}.")
+            if blame is None:
+                raise self.error(_join(path, field_path), error.value, error.allowed) from None
+            raise self.error(blame, error.value, f"{error.allowed} ({name}.{field_path})") from None
+        except TypeError as error:
+            raise self.error(blame or path, dict(given),
+                             f"hyperparameters {name} accepts ({error})") from None
+
+    def agent_on_task(self, name: str, hyperparameters: Mapping[str, Any], task_id: str,
+                      kwargs: Mapping[str, Any], path: str) -> None:
+        """Build the agent for the task's spaces and let it check the task (``check_env``)."""
+        from needbench.agents.base import NotApplicableError, env_spaces, make_task_vector_env
+        from needbench.agents.registry import AGENTS
+
+        agent_class = AGENTS[name]
+        env = make_task_vector_env(task_id, 1, agent_class.autoreset_mode, task_arguments(kwargs))
+        try:
+            agent = agent_class(*env_spaces(env), **hyperparameters)
+            agent.check_env(env)
+        except NotApplicableError:
+            return  # listed as not applicable when the suite runs
+        except ConfigError as error:
+            raise self.error(path, error.value,
+                             f"{error.allowed} (for {task_id}: {error.path})") from None
+        finally:
+            env.close()
+
+    def run(self) -> None:
+        suite = self.suite
+        for i, task in enumerate(suite.tasks):
+            self.keyword_names(task.id, task.kwargs, f"task[{i}].kwargs")
+            self.make_task(task.id, task.kwargs, f"task[{i}].kwargs")
+        for a, agent in enumerate(suite.agents):
+            self.hyperparameters(agent.name, agent.hyperparameters,
+                                 f"agent[{a}].hyperparameters")
+        for j, sweep in enumerate(suite.sweeps):
+            self.sweep(j, sweep)
+        checked: set[str] = set()
+        agents = {agent.name: a for a, agent in enumerate(suite.agents)}
+        for job in expand(suite):
+            key = canonical_json([job.task_id, job.task_kwargs, job.agent_name,
+                                  job.agent_hyperparameters])
+            if key in checked:
+                continue
+            checked.add(key)
+            point = " ".join(f"{label}={canonical_json(value)}"
+                             for label, value in sorted(job.sweep_point.items()))
+            path = f"agent[{agents[job.agent_name]}].hyperparameters"
+            if point:
+                path += f" (at {point})"
+            self.agent_on_task(job.agent_name, job.agent_hyperparameters, job.task_id,
+                               job.task_kwargs, path)
+
+    def sweep(self, j: int, sweep: Sweep) -> None:
+        from needbench.agents.registry import AGENTS
+
+        suite = self.suite
+        if sweep.target == "task":
+            for i, task in enumerate(suite.tasks):
+                if not sweep.applies_to(task.id, ""):
+                    continue
+                try:
+                    self.keyword_names(task.id, {**task.kwargs, sweep.parameter: sweep.values[0]},
+                                       f"task[{i}].kwargs")
+                except SuiteError as error:
+                    if error.path != f"task[{i}].kwargs.{sweep.parameter}":
+                        raise
+                    raise self.error(f"sweep[{j}].parameter", sweep.parameter,
+                                     f"{error.allowed} (a keyword of {task.id})") from None
+                for k, value in enumerate(sweep.values):
+                    self.make_task(task.id, {**task.kwargs, sweep.parameter: value},
+                                   f"task[{i}].kwargs", blame=f"sweep[{j}].values[{k}]",
+                                   blamed=value)
+        elif sweep.target == "agent" and sweep.parameter != "total_steps":
+            for a, agent in enumerate(suite.agents):
+                if not sweep.applies_to("", agent.name):
+                    continue
+                known = [f.name for f in dataclass_fields(AGENTS[agent.name].Hyperparameters)]
+                if sweep.parameter not in known:
+                    allowed = ", ".join(["total_steps", *known])
+                    raise SuiteError(self.source, f"sweep[{j}].parameter", sweep.parameter,
+                                     f"'total_steps' or a hyperparameter of {agent.name}: "
+                                     f"{allowed}", _nearest(sweep.parameter,
+                                                            ["total_steps", *known]))
+                for k, value in enumerate(sweep.values):
+                    self.hyperparameters(agent.name,
+                                         {**agent.hyperparameters, sweep.parameter: value},
+                                         f"agent[{a}].hyperparameters",
+                                         blame=f"sweep[{j}].values[{k}]")
+
+
+def check_suite(suite: Suite) -> Suite:
+    """Check a parsed suite whole, with each task's and each agent's own checkers.
+
+    Every task's keywords (names with the task's argument checker, values by
+    building the task: drive names, ``drive_params``, declared needs...),
+    every agent's hyperparameters (its own dataclass), every sweep parameter
+    and value, and every (task, agent) pair of the grid (the agent built for
+    the task's spaces and its ``check_env``: an oversized table...). Pairs
+    an agent does not handle at all are left to the runner, which lists them
+    as not applicable. Returns the suite.
+
+    Raises:
+        SuiteError: naming the file, the key path (``task[0].kwargs.max_step``),
+            the bad value and what is allowed.
+    """
+    _Checker(suite).run()
+    return suite
+
+
+def load_suite(source: str | Path) -> Suite:
+    """Parse a suite against the registries and check it whole (:func:`check_suite`)."""
+    import needbench.envs
+    from needbench.agents.registry import AGENTS
+
+    suite = parse_suite(source, known_tasks=needbench.envs.TASK_IDS, known_agents=list(AGENTS))
+    return check_suite(suite)
 
 
 # ----------------------------------------------------------------------------

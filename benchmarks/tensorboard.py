@@ -16,8 +16,11 @@ The event-file writer, first available wins:
 4. none: scalars are still kept for the store, and :func:`writer_backend`
    returns None so that the command line can say that no event files are written.
 
-Deep agents that drive Stable-Baselines3 read ``tensorboard_dir`` and let SB3
-write its own event files in the same folder.
+One job writes one run: agents log only through this logger (deep agents
+included: Stable-Baselines3 writes no event files of its own). The scalar
+names are those of :mod:`needbench.agents.curves`; the logger's
+:attr:`RunLogger.discount` is the suite's scoring discount, which agents use
+for their stability curves.
 """
 
 from __future__ import annotations
@@ -29,6 +32,8 @@ import sys
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
+
+from needbench.agents.curves import DEFAULT_DISCOUNT, check_discount
 
 #: Tags of the evaluation scalars, written once per job at the end of learning.
 EVALUATION_PREFIX = "eval/"
@@ -93,6 +98,8 @@ class RunLogger:
 
     Args:
         tensorboard_dir: folder of this job's event files, or None to write none.
+        discount: the suite's scoring discount, handed to the agent for its
+            stability curves (:func:`needbench.agents.curves.scoring_discount`).
 
     Attributes:
         tensorboard_dir: the folder (a ``str``) or None; None too when no
@@ -101,7 +108,8 @@ class RunLogger:
         curves: every logged point, (step, tag, value), in logging order.
     """
 
-    def __init__(self, tensorboard_dir: str | Path | None):
+    def __init__(self, tensorboard_dir: str | Path | None, discount: float = DEFAULT_DISCOUNT):
+        self.discount = check_discount("discount", discount)
         self.curves: list[tuple[int, str, float]] = []
         self.backend = writer_backend() if tensorboard_dir is not None else None
         self._writer = None

@@ -540,9 +540,14 @@ class NeedEnv(gym.Env):
 class NeedVectorEnv(VectorEnv):
     """Native vector shell around :class:`TaskCore` (B = num_envs).
 
-    Autoreset follows Gymnasium's next-step mode: after a copy's episode ends,
-    the following ``step`` resets that copy, ignores its action and returns its
-    first observation with reward 0.
+    Autoreset follows Gymnasium's modes (``autoreset_mode``). ``NEXT_STEP``
+    (the default): after a copy's episode ends, the following ``step`` resets
+    that copy, ignores its action and returns its first observation with
+    reward 0. ``SAME_STEP``: the step that ends a copy's episode resets it at
+    once and returns its first observation, with the step's reward and end
+    flags; the last observation and step info are in ``info["final_obs"]``
+    and ``info["final_info"]`` (rows of the copies flagged by
+    ``info["_final_obs"]``), and the copy's other info rows are its reset info.
     """
 
     world_cls: ClassVar[type[World]]
@@ -550,9 +555,16 @@ class NeedVectorEnv(VectorEnv):
     metadata = {"render_modes": ["ansi", "rgb_array"], "render_fps": 8,
                 "autoreset_mode": AutoresetMode.NEXT_STEP}
 
-    def __init__(self, num_envs: int = 1, render_mode: str | None = None, **kwargs: Any):
+    def __init__(self, num_envs: int = 1, render_mode: str | None = None,
+                 autoreset_mode: AutoresetMode | str = AutoresetMode.NEXT_STEP, **kwargs: Any):
         if not isinstance(num_envs, (int, np.integer)) or num_envs < 1:
             raise ConfigError("num_envs", num_envs, "a whole number >= 1")
+        modes = (AutoresetMode.NEXT_STEP, AutoresetMode.SAME_STEP)
+        if autoreset_mode not in modes and autoreset_mode not in [m.value for m in modes]:
+            raise ConfigError("autoreset_mode", autoreset_mode,
+                              "AutoresetMode.NEXT_STEP or AutoresetMode.SAME_STEP")
+        self.autoreset_mode = AutoresetMode(autoreset_mode)
+        self.metadata = {**type(self).metadata, "autoreset_mode": self.autoreset_mode}
         if render_mode is not None:
             check_choice("render_mode", render_mode, self.metadata["render_modes"])
         self.render_mode = render_mode
@@ -588,19 +600,44 @@ class NeedVectorEnv(VectorEnv):
     def step(self, actions):
         core = self.core
         batched = core.validate_actions(actions, self.action_space)
+        if self.autoreset_mode == AutoresetMode.SAME_STEP:
+            return self._step_same(batched)
         resetting = self._done
         core.step(batched)
         if resetting.any():
-            core.reset(self._keys.next(np.flatnonzero(resetting)), resetting)
-            engine = core.engine
-            for index in (INTERNAL, TASK, INTAKE, REWARD, TERMINATED, TRUNCATED):
-                engine[index][resetting] = 0
-            engine[ALIVE][resetting] = True
-            for value in core.events.values():
-                value[resetting] = 0
+            self._reset_copies(resetting)
+            for index in (REWARD, TERMINATED, TRUNCATED):
+                core.engine[index][resetting] = 0
         reward, terminated, truncated = core.outcome()
         self._done = terminated | truncated
         return core.observation(), reward, terminated, truncated, core.info()
+
+    def _step_same(self, batched: np.ndarray):
+        """One step in same-step autoreset (class docstring)."""
+        core = self.core
+        core.step(batched)
+        reward, terminated, truncated = core.outcome()
+        info = core.info()
+        done = terminated | truncated
+        if done.any():
+            final_obs, final_info = core.observation(), info
+            self._reset_copies(done)
+            info = core.info()
+            info.update(final_obs=final_obs, _final_obs=done.copy(), final_info=final_info,
+                        _final_info=done.copy())
+        return core.observation(), reward, terminated, truncated, info
+
+    def _reset_copies(self, mask: np.ndarray) -> None:
+        """New episodes in the copies in ``mask``; their rows of the step's info (reward
+        parts, intake, events) become those of a reset: zero, and alive."""
+        core = self.core
+        core.reset(self._keys.next(np.flatnonzero(mask)), mask)
+        engine = core.engine
+        for index in (INTERNAL, TASK, INTAKE):
+            engine[index][mask] = 0
+        engine[ALIVE][mask] = True
+        for value in core.events.values():
+            value[mask] = 0
 
     def render(self):
         if self.render_mode is None:

@@ -22,7 +22,10 @@ from needbench.agents.base import (
     copy_seeds,
     decode_space,
     encode_space,
+    exploration_keys,
 )
+from needbench.agents.curves import EPISODE_RETURN
+import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.agents.random_agent import RandomAgent
 from needbench.agents.registry import AGENTS, make_agent, register_agent
 from needbench.envs.errors import ConfigError
@@ -88,7 +91,7 @@ def test_register_agent_adds_one_lazy_line_and_reports_missing_packages():
 
 def test_null_logger_fits_the_logger_protocol():
     assert isinstance(NullLogger(), Logger)
-    assert NullLogger().log_scalar("charts/episodic_return", 1.0, 3) is None
+    assert NullLogger().log_scalar(EPISODE_RETURN, 1.0, 3) is None
 
 
 def test_as_vector_env_batches_a_single_env_and_keeps_vector_envs():
@@ -145,15 +148,28 @@ def test_loading_a_file_that_is_no_agent_file_is_a_config_error(tmp_path):
         Agent.load(other)
 
 
-def test_copy_seeds_depend_on_seed_and_copy_only():
-    seeds_a, keys_a = copy_seeds(3, 4)
-    seeds_b, keys_b = copy_seeds(3, 8)
-    assert seeds_a == seeds_b[:4] and np.array_equal(keys_a, keys_b[:4])
-    # Common practice, no source: distinct seeds do not share env streams (seed + j would).
-    assert not set(copy_seeds(4, 4)[0]) & set(seeds_a)
-    assert all(0 <= s < 2**31 for s in seeds_b)
+def test_copy_seeds_are_gymnasiums_seed_plus_copy_index():
+    assert copy_seeds(3, 4) == [3, 4, 5, 6]
+    keys_a, keys_b = exploration_keys(3, 4), exploration_keys(3, 8)
+    assert np.array_equal(keys_a, keys_b[:4]) and len(set(keys_b.tolist())) == 8
+    # Copy 1 of seed 3 and copy 0 of seed 4 are the same copy seed, so the same stream.
+    assert keys_a[1] == exploration_keys(4, 1)[0]
     with pytest.raises(ConfigError, match="seed"):
         copy_seeds(-1, 2)
+
+
+def test_the_vector_envs_apply_copy_seeds_to_an_int_seed():
+    # Source: Gymnasium's SyncVectorEnv.reset(seed=s) seeds copy j with s + j; the native
+    # vector env and copy_seeds follow it, so an int seed and the list agree.
+    native = gym.make_vec("needbench/Menu-v0", num_envs=3, vectorization_mode="vector_entry_point")
+    sync = gym.make_vec("needbench/Menu-v0", num_envs=3, vectorization_mode="sync")
+    from_int, _ = native.reset(seed=11)
+    from_list, _ = native.reset(seed=copy_seeds(11, 3))
+    from_sync, _ = sync.reset(seed=11)
+    np.testing.assert_array_equal(from_int, from_list)
+    np.testing.assert_array_equal(from_int, from_sync)
+    native.close()
+    sync.close()
 
 
 # --- random --------------------------------------------------------------------------------------
@@ -187,3 +203,49 @@ def test_random_agent_is_reproducible_from_its_seed(tmp_path):
     assert actions(reloaded) == actions(fresh)  # a loaded agent restarts its seed's stream
     with pytest.raises(ConfigError, match="seed"):
         first.learn(None, 0, seed=-3)
+
+
+# --- one observation or a batch, for every registered agent ---------------------------------------
+
+#: A task each agent handles, and a budget that is quick.
+ACT_CASES = {
+    "random": ("needbench/Menu-v0", 0, {}),
+    "exact-planner": ("needbench/Menu-v0", 0, {}),
+    "tabular-q": ("needbench/Menu-v0", 200, {}),
+    "setpoint-controller": ("needbench/Forage-v0", 0, {}),
+    "ppo": ("needbench/Menu-v0", 64, {"n_steps": 32, "batch_size": 32, "n_epochs": 1}),
+    "a2c": ("needbench/Menu-v0", 64, {"n_steps": 8}),
+    "dqn": ("needbench/Menu-v0", 64, {"learning_starts": 16, "batch_size": 16}),
+    "sac": ("needbench/Arena-v0", 64, {"learning_starts": 16, "batch_size": 16}),
+}
+
+
+def test_every_registered_agent_has_an_act_case():
+    assert set(ACT_CASES) == set(AGENTS)
+
+
+@pytest.mark.parametrize("name", sorted(ACT_CASES))
+def test_act_takes_one_observation_or_a_batch(name):
+    from needbench.agents.base import learning_env
+
+    if name in ("ppo", "a2c", "dqn", "sac"):
+        pytest.importorskip("stable_baselines3")
+    task, budget, hyperparameters = ACT_CASES[name]
+    single = gym.make(task)
+    agent = make_agent(name, single.observation_space, single.action_space, **hyperparameters)
+    env = learning_env(agent, task, {"max_steps": 30})
+    agent.learn(env, budget, seed=0)
+    env.close()
+    observations, _ = gym.make_vec(task, num_envs=5,
+                                   vectorization_mode="vector_entry_point").reset(seed=1)
+    batch = np.asarray(agent.act(observations))
+    # Source: Gymnasium's batch_space: B actions of the single space, with a leading axis.
+    assert batch.shape == (5,) + single.action_space.shape
+    one = agent.act(observations[0])  # as Stable-Baselines3's predict: one action
+    assert np.shape(one) == single.action_space.shape
+    assert single.action_space.contains(np.asarray(one, dtype=single.action_space.dtype))
+    if name != "random":  # random draws afresh on every call
+        np.testing.assert_allclose(np.asarray(one, dtype=float), batch[0].astype(float),
+                                   rtol=1e-5, atol=1e-6)
+    with pytest.raises(ConfigError, match="observations"):
+        agent.act(observations[:, :2])  # neither one observation nor a batch of them

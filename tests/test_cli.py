@@ -20,7 +20,8 @@ from scipy import stats
 
 import needbench.envs
 from needbench.agents.registry import AGENTS
-from needbench.benchmarks.cli import Cell, builtin_suites, format_table, load_suite, main
+from needbench.benchmarks.cli import builtin_suites, load_suite, main
+from needbench.benchmarks.table import Cell, format_table
 from needbench.benchmarks.runner import run_suite
 from needbench.benchmarks.spec import expand, parse_suite
 from needbench.benchmarks.store import Store
@@ -190,16 +191,29 @@ def test_a_lost_ray_worker_fails_only_its_own_job(ray_session, tmp_path, monkeyp
 
 
 def test_a_failing_job_is_recorded_and_the_exit_code_is_1(tmp_path, capsys):
-    # 4096 bins per internal need make a table too large: tabular-q refuses it in learn().
+    # One sweep of value iteration cannot reach the planner's tolerance: learn() raises,
+    # a failure only running the job can show.
     suite = _write(tmp_path, "failing.toml", SUITE.replace(
-        "total_steps = 800", "total_steps = 800\n[agent.hyperparameters]\ninternal_bins = 4096"))
+        'name = "tabular-q"\ntotal_steps = 800',
+        'name = "exact-planner"\ntotal_steps = 0\n[agent.hyperparameters]\n'
+        'max_iterations = 1'))
     code = main(["run", str(suite), "--out", str(tmp_path / "out"), "--workers", "2"])
     assert code == 1
-    assert "failed: needbench/Menu-v0 tabular-q seed=0" in capsys.readouterr().err
+    assert "failed: needbench/Menu-v0 exact-planner seed=0" in capsys.readouterr().err
     with Store(tmp_path / "out" / "results.sqlite3") as store:
         failed = store.runs(status="failed")
-        assert len(failed) == 4 and all("state count" in run["error"] for run in failed)
+        assert len(failed) == 4 and all("max_iterations" in run["error"] for run in failed)
         assert len(store.runs(status="done")) == 8
+
+
+def test_a_setting_that_cannot_fit_the_task_stops_the_run_before_it_starts(tmp_path, capsys):
+    # 4096 bins per internal need make a table too large for Menu's spaces.
+    suite = _write(tmp_path, "oversized.toml", SUITE.replace(
+        "total_steps = 800", "total_steps = 800\n[agent.hyperparameters]\ninternal_bins = 4096"))
+    assert main(["run", str(suite), "--out", str(tmp_path / "out")]) == 2
+    err = capsys.readouterr().err
+    assert str(suite) in err and "agent[1].hyperparameters" in err and "state count" in err
+    assert not (tmp_path / "out").exists()
 
 
 def _count_done(path: Path) -> int:

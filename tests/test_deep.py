@@ -13,16 +13,23 @@ import needbench.envs  # noqa: F401  (registers the tasks)
 
 pytest.importorskip("stable_baselines3")
 
-from needbench.agents.base import copy_seeds, read_agent_file  # noqa: E402
+from gymnasium.vector import AutoresetMode  # noqa: E402
+
+from needbench.agents.base import learning_env, read_agent_file  # noqa: E402
+from needbench.agents.curves import (  # noqa: E402
+    EPISODE_LENGTH,
+    EPISODE_RETURN,
+    TIME_IN_BAND,
+    update_tag,
+)
 from needbench.agents.deep import (  # noqa: E402
     KIND_DEFAULTS,
     A2CAgent,
     DQNAgent,
-    EpisodeStability,
     PPOAgent,
     SACAgent,
+    algorithm_arguments,
     import_stable_baselines3,
-    native_vector_spec,
     resolve_hyperparameters,
     task_kind,
 )
@@ -56,24 +63,6 @@ class Recorder:
 
     def values(self, tag: str) -> list[float]:
         return [value for name, value, _ in self.rows if name == tag]
-
-
-class StepLog(gym.Wrapper):
-    """Keeps the reset seeds, and each step's reward, end flag and info."""
-
-    def __init__(self, env):
-        super().__init__(env)
-        self.reset_seeds: list[int | None] = []
-        self.steps: list[tuple[float, bool, dict]] = []
-
-    def reset(self, *, seed=None, options=None):
-        self.reset_seeds.append(seed)
-        return self.env.reset(seed=seed, options=options)
-
-    def step(self, action):
-        observation, reward, terminated, truncated, info = self.env.step(action)
-        self.steps.append((reward, terminated or truncated, info))
-        return observation, reward, terminated, truncated, info
 
 
 def make_agent(name: str, env, **extra):
@@ -134,7 +123,8 @@ def test_bad_hyperparameters_name_the_field():
     with pytest.raises(ConfigError, match="a2c.normalise_observations"):
         A2CAgent(env.observation_space, env.action_space, normalise_observations=None)
     with pytest.raises(RuntimeError, match="learn"):
-        PPOAgent(env.observation_space, env.action_space).act(np.zeros((1, 4)))
+        PPOAgent(env.observation_space, env.action_space).act(
+            np.zeros((1,) + env.observation_space.shape))
 
 
 def test_task_kind_defaults():
@@ -177,8 +167,10 @@ def test_adapter_learns_acts_and_round_trips(name, task, tmp_path):
     assert actions.shape == (len(observations),) + env.action_space.shape
     assert all(env.action_space.contains(np.asarray(a, dtype=env.action_space.dtype))
                for a in actions)
-    single = agent.act(observations[0])
-    assert single.shape == (1,) + env.action_space.shape
+    single = agent.act(observations[0])  # one observation, one action (as SB3's predict)
+    assert np.shape(single) == env.action_space.shape
+    # torch's float32 sums may differ in the last digits between batch sizes.
+    np.testing.assert_allclose(single, actions[0], rtol=1e-5, atol=1e-6)
 
     path = tmp_path / f"{name}.npz"
     agent.save(path)
@@ -199,74 +191,123 @@ def test_same_seed_same_agent():
     np.testing.assert_array_equal(first.act(observations), second.act(observations))
 
 
-def test_copies_from_a_vector_env_follow_the_seeding_convention():
-    vec = gym.make_vec("needbench/Menu-v0", num_envs=3, vectorization_mode="vector_entry_point",
-                       max_steps=40)
+class ResetSeeds(gym.vector.VectorWrapper):
+    """Keeps the seeds a vector env is reset with."""
+
+    def __init__(self, env):
+        super().__init__(env)
+        self.seeds: list = []
+
+    def reset(self, *, seed=None, options=None):
+        self.seeds.append(seed)
+        return self.env.reset(seed=seed, options=options)
+
+
+def same_step(task: str, copies: int, **kwargs):
+    return gym.make_vec(task, num_envs=copies, vectorization_mode="vector_entry_point",
+                        autoreset_mode=AutoresetMode.SAME_STEP, **kwargs)
+
+
+def test_the_adapter_steps_the_given_vector_env_seeded_by_gymnasiums_convention():
+    vec = ResetSeeds(same_step("needbench/Menu-v0", 3, max_steps=40))
     agent = make_agent("ppo", gym.make("needbench/Menu-v0"), n_steps=32, batch_size=32)
     agent.learn(vec, 96, seed=2)
     assert agent.model.n_envs == 3
-    # Re-made from the vector env's spec as one batched core, with the task keyword kept.
-    assert agent.model.get_env().core.max_steps == 40
-    assert agent.model.get_env().core.batch == 3
+    assert agent.model.get_env().env is vec  # wrapped as it is, not re-made
+    assert vec.seeds[0] == 2  # the env gives copy j the seed 2 + j
     with pytest.raises(ConfigError, match="n_envs"):
         make_agent("ppo", gym.make("needbench/Menu-v0"), n_envs=2).learn(vec, 0, seed=0)
+    next_step = gym.make_vec("needbench/Menu-v0", num_envs=2,
+                             vectorization_mode="vector_entry_point")
+    with pytest.raises(ConfigError, match="autoreset_mode"):
+        make_agent("ppo", gym.make("needbench/Menu-v0")).learn(next_step, 0, seed=0)
 
-    env = StepLog(gym.make("needbench/Menu-v0"))
-    make_agent("a2c", env).learn(env, 16, seed=9)
-    # Copy 0 of seed 9 is first reset with copy_seeds(9, 1)[0][0], not SB3's 9 + 0.
-    assert env.reset_seeds[0] == copy_seeds(9, 1)[0][0]
+
+def test_learning_env_makes_the_copies_the_agent_asks_for():
+    menu = gym.make("needbench/Menu-v0")
+    agent = make_agent("ppo", menu, n_envs=4)
+    env = learning_env(agent, "needbench/Menu-v0", {"max_steps": 20})
+    assert env.num_envs == 4 and env.metadata["autoreset_mode"] == AutoresetMode.SAME_STEP
+    assert env.unwrapped.core.max_steps == 20
+    forage = gym.make("needbench/Forage-v0")
+    spatial = PPOAgent(forage.observation_space, forage.action_space)
+    assert spatial.learning_copies(forage) == KIND_DEFAULTS["ppo"]["spatial"]["n_envs"]
 
 
-def test_single_env_without_spec_needs_one_copy():
+def test_a_single_env_is_one_copy():
     from needbench.envs.tasks.menu import MenuEnv
 
     env = MenuEnv()
-    with pytest.raises(ConfigError, match="env.spec"):
+    with pytest.raises(ConfigError, match="n_envs"):
         make_agent("ppo", env, n_envs=2).learn(env, 0, seed=0)
-    make_agent("ppo", env).learn(env, 64, seed=0)  # one copy: the env itself
+    agent = make_agent("ppo", env).learn(env, 64, seed=0)
+    assert agent.model.n_envs == 1
 
 
-def test_wrapped_env_that_cannot_be_remade_needs_one_copy():
-    env = StepLog(gym.make("needbench/Forage-v0"))  # not re-makable by Gymnasium
-    with pytest.raises(ConfigError, match="RecordConstructorArgs"):
-        make_agent("ppo", env, n_envs=2).learn(env, 0, seed=0)
+def test_one_table_gives_the_sb3_keywords():
+    agent = make_agent("ppo", gym.make("needbench/Menu-v0"))
+    resolved = resolve_hyperparameters("ppo", agent.hyperparameters, "outcome")
+    arguments = algorithm_arguments(resolved)
+    assert "net_arch" not in arguments and "n_envs" not in arguments
+    assert arguments["n_epochs"] == 2 and arguments["gamma"] == 0.95
+    # Source: the keywords of Stable-Baselines3's own constructors.
+    import inspect
+
+    sb3 = import_stable_baselines3("ppo")
+    for name, agent_class in AGENTS.items():
+        accepted = set(inspect.signature(getattr(sb3, agent_class.algorithm)).parameters)
+        fields = set(algorithm_arguments(agent_class.Hyperparameters()))
+        assert fields <= accepted, (name, fields - accepted)
 
 
 @pytest.mark.parametrize("task", ["needbench/Menu-v0", "needbench/Forage-v0"])
-def test_batched_copies_train_as_sb3_dummy_vec_env_does(task):
+def test_the_adapter_trains_as_sb3_dummy_vec_env_does(task):
     # Menu episodes end by death within 30 steps, Forage's by the time limit (truncation).
+    from stable_baselines3.common.monitor import Monitor
+    from stable_baselines3.common.vec_env import DummyVecEnv
+
     settings = {"n_envs": 3, "normalise_observations": True, "normalise_rewards": True}
-    batched_env = gym.make(task, max_steps=30)
-    # A no-op wrapper that Gymnasium can re-make keeps the env on SB3's per-copy path.
-    per_copy_env = gym.wrappers.DtypeObservation(gym.make(task, max_steps=30), np.float32)
-    assert native_vector_spec(batched_env) is not None
-    assert native_vector_spec(per_copy_env) is None
-    runs = []
-    for env in (batched_env, per_copy_env):
-        logger = Recorder()
-        runs.append((make_agent("ppo", env, **settings).learn(env, 384, seed=5, logger=logger),
-                     logger))
-    (batched, batched_log), (reference, reference_log) = runs
-    assert type(batched.model.get_env().venv).__name__ == "BatchedTaskCopies"
-    assert type(reference.model.get_env().venv).__name__ == "DummyVecEnv"
-    # Source: Stable-Baselines3's DummyVecEnv of Monitor-wrapped single envs, the reference
-    # for stepping, autoreset, timeout flags and episode records: the same training follows.
-    np.testing.assert_array_equal(policy_parameters(batched), policy_parameters(reference))
-    assert [(e["r"], e["l"]) for e in batched.model.ep_info_buffer] == \
-        [(e["r"], e["l"]) for e in reference.model.ep_info_buffer]
-    assert batched_log.rows == reference_log.rows  # the same per-copy infos reach the logger
-    assert len(batched_log.values("charts/time_in_band")) >= 9
+    single = gym.make(task, max_steps=30)
+    logger = Recorder()
+    ours = make_agent("ppo", single, **settings).learn(same_step(task, 3, max_steps=30), 384,
+                                                       seed=5, logger=logger)
+    # Source: Stable-Baselines3's DummyVecEnv of Monitor-wrapped single envs (SB3 seeds copy
+    # j with seed + j), the reference for stepping, autoreset and timeout flags: the same
+    # training follows from the native vector env behind the adapter.
+    reference = make_agent("ppo", single, **settings)
+    reference.resolved_hyperparameters = ours.resolved_hyperparameters
+    from needbench.agents.deep.normalisation import Normalisation
+
+    reference.normalisation = Normalisation(True, True)
+    dummy = reference.normalisation.wrap(
+        DummyVecEnv([lambda: Monitor(gym.make(task, max_steps=30))] * 3),
+        ours.resolved_hyperparameters.gamma)
+    from needbench.agents.deep.hyperparameters import algorithm_arguments as arguments
+
+    reference.model = reference._algorithm_class()(
+        "MlpPolicy", dummy, seed=5, device="cpu",
+        policy_kwargs={"net_arch": list(ours.resolved_hyperparameters.net_arch)},
+        **arguments(ours.resolved_hyperparameters))
+    reference.model.learn(384)
+    np.testing.assert_array_equal(policy_parameters(ours), policy_parameters(reference))
+    # Monitor's episode records and our episode curves: the same episodes.
+    episodes = [(e["r"], e["l"]) for e in reference.model.ep_info_buffer]
+    assert len(episodes) >= 9
+    np.testing.assert_allclose(logger.values(EPISODE_RETURN)[-len(episodes):],
+                               [r for r, _ in episodes], atol=1e-5)
+    assert logger.values(EPISODE_LENGTH)[-len(episodes):] == [float(n) for _, n in episodes]
+    reference.normalisation.take_statistics(dummy)
     for name in ("mean", "var", "count"):
         np.testing.assert_array_equal(
-            getattr(batched.normalisation.observation_statistics, name),
+            getattr(ours.normalisation.observation_statistics, name),
             getattr(reference.normalisation.observation_statistics, name))
-        np.testing.assert_array_equal(getattr(batched.normalisation.return_statistics, name),
+        np.testing.assert_array_equal(getattr(ours.normalisation.return_statistics, name),
                                       getattr(reference.normalisation.return_statistics, name))
 
 
 def test_normalisation_is_used_by_act_saved_and_continued(tmp_path):
-    env = gym.make("needbench/Forage-v0")
-    agent = make_agent("ppo", env, n_envs=4)  # the spatial kind normalises by default
+    agent = make_agent("ppo", gym.make("needbench/Forage-v0"), n_envs=4)  # spatial: normalise
+    env = learning_env(agent, "needbench/Forage-v0")
     agent.learn(env, 256, seed=3)
     assert agent.resolved_hyperparameters.normalise_observations
     assert agent.resolved_hyperparameters.normalise_rewards
@@ -301,67 +342,17 @@ def test_normalisation_is_used_by_act_saved_and_continued(tmp_path):
 # --- logging ---------------------------------------------------------------------------------
 
 
-def expected_episode_scalars(steps, gamma, need_names):
-    """Per-episode scalars computed straight from the env's own step infos."""
-    episodes, current = [], []
-    for record in steps:
-        current.append(record)
-        if record[1]:
-            episodes.append(current)
-            current = []
-    out = []
-    for episode in episodes:
-        rewards = [r for r, _, _ in episode]
-        drives = [info["drive"] for _, _, info in episode]
-        scalars = {
-            "charts/episodic_return": sum(rewards),
-            "charts/discounted_drive": sum(gamma ** t * d for t, d in enumerate(drives)),
-            "charts/time_in_band": float(np.mean([info["in_band"] for _, _, info in episode])),
-        }
-        for k, need in enumerate(need_names):
-            scalars[f"charts/deviation/{need}"] = float(
-                np.mean([abs(info["deviation"][k]) for _, _, info in episode]))
-        out.append(scalars)
-    return out
-
-
-@pytest.mark.parametrize("normalise", [False, True])
-def test_callback_logs_stability_from_env_infos(tmp_path, normalise):
-    env = StepLog(gym.make("needbench/Menu-v0", max_steps=30))
-    # With VecNormalize the agent learns from scaled rewards; the logs keep the env's own.
-    agent = make_agent("ppo", env, normalise_observations=normalise, normalise_rewards=normalise)
+def test_sb3_figures_arrive_as_update_scalars_and_sb3_writes_no_run(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    env = same_step("needbench/Menu-v0", 2, max_steps=30)
     logger = Recorder(tensorboard_dir=tmp_path)
-    agent.learn(env, 300, seed=0, logger=logger)
-    need_names = env.unwrapped.core.need_names
-    # Common practice, no source: the definitions of the needbench stability scalars
-    # (interfaces), recomputed here by hand from what the env reported.
-    expected = expected_episode_scalars(env.steps, agent.model.gamma, need_names)
-    assert len(expected) >= 10
-    for tag in expected[0]:
-        # SB3's vector env holds rewards in float32; the infos stay float64.
-        rtol = 1e-6 if tag == "charts/episodic_return" else 1e-12
-        np.testing.assert_allclose(logger.values(tag), [e[tag] for e in expected], rtol=rtol)
-    assert logger.values("losses/value_loss")  # SB3's training scalars are forwarded
-
-    # The same tags reach TensorBoard through SB3's logger (read with TensorBoard's reader).
-    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
-
-    runs = sorted(tmp_path.glob("ppo_*"))
-    assert runs
-    events = EventAccumulator(str(runs[0]))
-    events.Reload()
-    tags = set(events.Tags()["scalars"])
-    assert {"charts/time_in_band", "charts/discounted_drive",
-            "charts/episodic_return"} <= tags
-    assert {f"charts/deviation/{need}" for need in need_names} <= tags
-
-
-def test_episode_stability_without_needbench_infos_logs_return_only():
-    stability = EpisodeStability(copies=2, gamma=0.9)
-    assert stability.step(np.array([1.0, 2.0]), np.array([False, True]), [{}, {}]) == [
-        (1, {"charts/episodic_return": 2.0})]
-    assert stability.step(np.array([0.5, 1.0]), np.array([True, True]), [{}, {}]) == [
-        (0, {"charts/episodic_return": 1.5}), (1, {"charts/episodic_return": 1.0})]
+    make_agent("ppo", gym.make("needbench/Menu-v0")).learn(env, 256, seed=0, logger=logger)
+    tags = {tag for tag, _, _ in logger.rows}
+    assert update_tag("value_loss") in tags and update_tag("learning_rate") in tags
+    assert {EPISODE_RETURN, EPISODE_LENGTH, TIME_IN_BAND} <= tags
+    assert not [tag for tag in tags if tag.split("/")[0] in ("train", "rollout", "time",
+                                                              "charts", "losses")]
+    assert list(tmp_path.iterdir()) == []  # no event files or logs of SB3's own
 
 
 # --- a learning check --------------------------------------------------------------------------
@@ -409,8 +400,25 @@ def test_ppo_beats_random_on_time_in_band(task, settings, budget, margin):
     seeds = range(100, 116)
     env = gym.make(task)
     agent = PPOAgent(env.observation_space, env.action_space, **settings)  # kind's defaults
-    agent.learn(env, budget, seed=0)
+    agent.learn(learning_env(agent, task), budget, seed=0)
     random = RandomAgent(env.observation_space, env.action_space).learn(env, 0, seed=0)
     learned, floor = time_in_band(agent, task, seeds), time_in_band(random, task, seeds)
     # Common practice, no source: a learner must clear the uniform random floor.
     assert learned >= floor + margin, (learned, floor)
+
+
+def test_per_copy_infos_split_a_batched_info_and_honour_gymnasiums_masks():
+    from needbench.agents.deep import per_copy_infos
+
+    info = {"drive": np.array([1.0, 2.0]), "_drive": np.array([True, False]),
+            "level": np.arange(6.0).reshape(2, 3), "final_obs": np.zeros((2, 3))}
+    first, second = per_copy_infos(info, 2)
+    assert first["drive"] == 1.0 and "drive" not in second
+    np.testing.assert_array_equal(second["level"], [3.0, 4.0, 5.0])
+    assert "final_obs" not in first and not any(key.startswith("_") for key in first)
+    # Source: Gymnasium's SyncVectorEnv info layout (values per key, `_key` masks).
+    sync = gym.vector.SyncVectorEnv([lambda: gym.make("needbench/Menu-v0")] * 2)
+    _, batched = sync.reset(seed=0)
+    single = gym.make("needbench/Menu-v0")
+    _, expected = single.reset(seed=1)
+    assert per_copy_infos(batched, 2)[1]["drive"] == pytest.approx(expected["drive"])

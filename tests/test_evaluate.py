@@ -123,7 +123,7 @@ def test_evaluation_seeds_are_reproducible_and_apart_from_the_learning_copies():
     assert seeds == evaluation_seeds(7, 50)
     assert evaluation_seeds(7, 10) == seeds[:10]
     assert len(set(seeds)) == 50
-    assert not set(seeds) & set(copy_seeds(7, 50)[0])
+    assert not set(seeds) & set(copy_seeds(7, 50))
     assert not set(seeds) & set(evaluation_seeds(8, 50))
     assert all(0 <= seed < 2**31 for seed in seeds)
 

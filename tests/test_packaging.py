@@ -23,6 +23,7 @@ def wheel(tmp_path_factory):
 def test_wheel_maps_the_three_folders_into_the_namespace(wheel):
     names = set(zipfile.ZipFile(wheel).namelist())
     for expected in ("needbench/envs/physiology.py", "needbench/agents/base.py",
+                     "needbench/agents/deep/vec_env.py",
                      "needbench/benchmarks/cli.py", "needbench/benchmarks/suites/quickstart.toml",
                      "needbench/benchmarks/perf/core_throughput.py"):
         assert expected in names

@@ -10,6 +10,7 @@ import textwrap
 import numpy as np
 import pytest
 
+from needbench.agents.curves import EPISODE_RETURN, TIME_IN_BAND
 from needbench.benchmarks import runner
 from needbench.benchmarks.runner import (
     NotApplicable,
@@ -76,7 +77,7 @@ def test_a_job_learns_evaluates_and_writes_tensorboard_scalars(tmp_path):
     assert len(result.episodes) == 3 and len(result.traces) == 2
     assert all(episode["length"] == 40 for episode in result.episodes)
     tags = {tag for _, tag, _ in result.curves}
-    assert {"charts/episodic_return", "charts/time_in_band"} <= tags
+    assert {EPISODE_RETURN, TIME_IN_BAND} <= tags
     # The stored trace and the episode's metrics agree on the return.
     assert result.episodes[0]["return"] == pytest.approx(float(result.traces[0]["reward"].sum()))
 
@@ -85,16 +86,16 @@ def test_a_job_learns_evaluates_and_writes_tensorboard_scalars(tmp_path):
     series = _scalar_events(folder)
     assert {"eval/return", "eval/discounted_drive", "eval/time_in_band", "eval/survival",
             "eval/deviation/energy", "eval/deviation/water",
-            "charts/episodic_return"} <= set(series)
+            EPISODE_RETURN} <= set(series)
     ((step, value),) = series["eval/return"]
     assert step == 800
     # Common practice, no source: the evaluation scalar is the mean over episodes.
     expected = np.mean([episode["return"] for episode in result.episodes])
     assert value == pytest.approx(expected, rel=1e-6)  # event files hold float32
     logged = [(step, value) for step, tag, value in result.curves
-              if tag == "charts/episodic_return"]
-    assert [s for s, _ in series["charts/episodic_return"]] == [s for s, _ in logged]
-    assert [v for _, v in series["charts/episodic_return"]] == pytest.approx(
+              if tag == EPISODE_RETURN]
+    assert [s for s, _ in series[EPISODE_RETURN]] == [s for s, _ in logged]
+    assert [v for _, v in series[EPISODE_RETURN]] == pytest.approx(
         [v for _, v in logged], rel=1e-6)
 
 
@@ -105,14 +106,32 @@ def test_the_logger_writes_with_either_writer(tmp_path, monkeypatch):
         monkeypatch.setattr(tensorboard, "writer_backend", lambda backend=backend: backend)
         with tensorboard.RunLogger(tmp_path / backend) as logger:
             assert logger.backend == backend and logger.tensorboard_dir == str(tmp_path / backend)
-            logger.log_scalar("losses/value", 0.25, 7)
-        assert _scalar_events(tmp_path / backend) == {"losses/value": [(7, 0.25)]}
+            logger.log_scalar("update/value", 0.25, 7)
+        assert _scalar_events(tmp_path / backend) == {"update/value": [(7, 0.25)]}
     monkeypatch.setattr(tensorboard, "writer_backend", lambda: None)
     logger = tensorboard.RunLogger(tmp_path / "none")
-    logger.log_scalar("losses/value", 0.5, 1)
+    logger.log_scalar("update/value", 0.5, 1)
     logger.close()
-    assert logger.tensorboard_dir is None and logger.curves == [(1, "losses/value", 0.5)]
+    assert logger.tensorboard_dir is None and logger.curves == [(1, "update/value", 0.5)]
     assert not (tmp_path / "none").exists()
+
+
+def test_a_deep_job_writes_one_run_with_our_scalar_names_only(tmp_path):
+    pytest.importorskip("stable_baselines3")
+    job = _job(agent="ppo", hyperparameters={"n_steps": 32, "batch_size": 32, "n_epochs": 1,
+                                             "n_envs": 2}, total_steps=256)
+    result = run_job(job.config, job.hash, RunSettings(tensorboard_root=str(tmp_path)))
+    assert result.status == "done", result.error
+    (folder,) = tmp_path.iterdir()
+    # One run per job: event files in the job's folder, no run nested inside it.
+    assert all(entry.is_file() for entry in folder.iterdir())
+    tags = set(_scalar_events(folder))
+    assert {EPISODE_RETURN, "episode/length", TIME_IN_BAND, "update/value_loss",
+            "eval/return"} <= tags
+    assert {tag.split("/")[0] for tag in tags} <= {"episode", "stability", "update", "eval"}
+    # The curves the store keeps are the event file's, and deep runs log episode lengths.
+    assert {tag for _, tag, _ in result.curves} == tags - {t for t in tags
+                                                           if t.startswith("eval/")}
 
 
 def test_a_job_that_raises_comes_back_failed_with_its_traceback():

@@ -324,3 +324,135 @@ def test_jobs_pickle_for_worker_processes():
     copy_of_job = pickle.loads(pickle.dumps(job))
     assert copy_of_job == job and copy_of_job.hash == job.hash
     assert len({job, copy_of_job}) == 1
+
+
+# --- a suite checked whole at load ---------------------------------------------------------------
+
+CHECKED = """
+[suite]
+name = "checked"
+seeds = [0]
+
+[[task]]
+id = "needbench/Menu-v0"
+[task.kwargs]
+max_steps = 40
+
+[[agent]]
+name = "tabular-q"
+total_steps = 100
+[agent.hyperparameters]
+learning_rate = 0.2
+"""
+
+
+def _checked(text: str):
+    return spec.load_suite(text)
+
+
+def test_a_clean_suite_and_the_builtin_suites_pass_the_whole_check():
+    assert _checked(CHECKED).name == "checked"
+    for name in ("quickstart", "core", "tradeoff"):
+        path = spec.Path(spec.__file__).parent / "suites" / f"{name}.toml"
+        assert spec.load_suite(path).name == name
+
+
+@pytest.mark.parametrize("old, new, path, hint", [
+    # an unknown task keyword, with the nearest one suggested
+    ("max_steps = 40", "max_step = 40", "task[0].kwargs.max_step", "max_steps"),
+    # a wrongly typed keyword
+    ("max_steps = 40", 'max_steps = "40"', "task[0].kwargs.max_steps", "whole number"),
+    # a bad drive name and bad drive parameters
+    ("max_steps = 40", 'drive = "homeostatik"', "task[0].kwargs.drive", "homeostatic"),
+    ("max_steps = 40", "drive_params = { m = -1.0 }", "task[0].kwargs.drive_params.m", None),
+    ("max_steps = 40", "drive_params = { exponent = 2.0 }", "task[0].kwargs.drive_params",
+     "n, m, weights"),
+    # an unknown or wrongly typed hyperparameter
+    ("learning_rate = 0.2", "learnin_rate = 0.2", "agent[0].hyperparameters.learnin_rate",
+     "learning_rate"),
+    ("learning_rate = 0.2", 'learning_rate = "fast"', "agent[0].hyperparameters.learning_rate",
+     "a number in"),
+    # a table too large for the task's spaces
+    ("learning_rate = 0.2", "internal_bins = 100000", "agent[0].hyperparameters", "state count"),
+])
+def test_each_kind_of_typo_is_named_at_load(old, new, path, hint):
+    assert old in CHECKED
+    with pytest.raises(spec.SuiteError) as caught:
+        _checked(CHECKED.replace(old, new))
+    error = caught.value
+    assert error.source == "<string>" and error.path.startswith(path), error
+    message = str(error)
+    assert message.startswith("<string>: ") and "is not allowed; expected" in message
+    if hint is not None:
+        assert hint in message
+
+
+SWEEP = """
+[[sweep]]
+target = "{target}"
+parameter = "{parameter}"
+values = {values}
+"""
+
+
+@pytest.mark.parametrize("target, parameter, values, path, hint", [
+    ("task", "task_weigth", "[0.0, 0.5]", "sweep[0].parameter", "task_weight"),
+    ("task", "task_weight", '[0.0, "half"]', "sweep[0].values[1]", "task_weight"),
+    ("task", "max_steps", "[10, 0]", "sweep[0].values[1]", "max_steps"),
+    ("agent", "learnin_rate", "[0.1]", "sweep[0].parameter", "learning_rate"),
+    ("agent", "learning_rate", "[0.1, 2.0]", "sweep[0].values[1]", "learning_rate"),
+    ("agent", "internal_bins", "[4, 100000]", "agent[0].hyperparameters", "internal_bins=100000"),
+])
+def test_sweep_parameters_and_every_sweep_value_are_checked(target, parameter, values, path,
+                                                            hint):
+    text = CHECKED + SWEEP.format(target=target, parameter=parameter, values=values)
+    with pytest.raises(spec.SuiteError) as caught:
+        _checked(text)
+    assert caught.value.path.startswith(path), caught.value
+    assert hint in str(caught.value)
+
+
+def test_declared_needs_become_need_objects_and_their_typos_are_named():
+    from needbench.envs import Need
+
+    salt = """
+[[task.kwargs.extra_needs]]
+name = "salt"
+unit = "mmol/L"
+set_point = 140.0
+band = 5.0
+lethal_low = 115.0
+lethal_high = 165.0
+initial_low = 138.0
+initial_high = 142.0
+drain = 0.2
+"""
+    suite = _checked(CHECKED + salt)
+    (job,) = spec.expand(suite)
+    (need,) = job.task_arguments["extra_needs"]
+    assert isinstance(need, Need) and need.name == "salt" and need.drain == 0.2
+    assert job.task_kwargs["extra_needs"][0]["name"] == "salt"  # the hash sees plain values
+    import gymnasium as gym
+
+    env = gym.make(job.task_id, **job.task_arguments)
+    assert "salt" in env.unwrapped.core.need_names
+    env.close()
+    with pytest.raises(spec.SuiteError) as caught:
+        _checked(CHECKED + salt.replace("set_point", "setpoint"))
+    assert caught.value.path == "task[0].kwargs.extra_needs[0].setpoint"
+    assert "set_point" in str(caught.value)
+    with pytest.raises(spec.SuiteError) as caught:
+        _checked(CHECKED + salt.replace("band = 5.0", "band = -5.0"))
+    assert caught.value.path.startswith("task[0].kwargs")
+    assert "band" in str(caught.value)
+
+
+def test_the_cli_exits_2_naming_the_file_before_making_a_folder(tmp_path, capsys):
+    from needbench.benchmarks.cli import main
+
+    path = tmp_path / "typo.toml"
+    path.write_text(CHECKED.replace("max_steps = 40", "max_step = 40"))
+    assert main(["run", str(path), "--out", str(tmp_path / "out")]) == 2
+    err = capsys.readouterr().err
+    assert f"{path}: task[0].kwargs.max_step = 40" in err and "max_steps" in err
+    assert not (tmp_path / "out").exists()

@@ -46,9 +46,9 @@ def _result(job: spec.Job, *, status: str = "done", returns=(1.0, 3.0)) -> JobRe
                      error="Traceback: the agent fell over" if status == "failed" else None,
                      started=1_700_000_000.0, finished=1_700_000_012.5, wall_seconds=12.5,
                      episodes=episodes if status == "done" else [],
-                     curves=[(0, "charts/episodic_return", -1.0),
-                             (100, "charts/episodic_return", 0.5),
-                             (100, "charts/time_in_band", 0.3)],
+                     curves=[(0, "episode/return", -1.0),
+                             (100, "episode/return", 0.5),
+                             (100, "stability/time_in_band", 0.3)],
                      traces=traces if status == "done" else [], git_revision="abc123")
 
 
@@ -92,7 +92,7 @@ def test_round_trip(tmp_path):
     with pytest.raises(KeyError):
         store.trace(job.hash, 7)
 
-    steps, values = store.learning_curve(job.hash, "charts/episodic_return")
+    steps, values = store.learning_curve(job.hash, "episode/return")
     np.testing.assert_array_equal(steps, [0, 100])
     np.testing.assert_array_equal(values, [-1.0, 0.5])
     store.close()

@@ -12,6 +12,13 @@ from gymnasium.wrappers.vector import RecordEpisodeStatistics
 
 import needbench.envs  # noqa: F401  (registers needbench/Menu-v0)
 from needbench.agents.base import Agent
+from needbench.agents.curves import (
+    DISCOUNTED_DRIVE,
+    EPISODE_LENGTH,
+    EPISODE_RETURN,
+    TIME_IN_BAND,
+    deviation_tag,
+)
 from needbench.agents.planner import mdp_from_toy_text, policy_evaluation, value_iteration
 from needbench.agents.random_agent import RandomAgent
 from needbench.agents.registry import make_agent
@@ -43,7 +50,8 @@ def greedy_start_value(agent: TabularQAgent, slippery: bool, gamma: float) -> tu
 
 
 class _Curves:
-    def __init__(self):
+    def __init__(self, discount: float = 0.99):
+        self.discount = discount  # the scoring discount of the stability curves
         self.points: dict[str, list[tuple[int, float]]] = {}
 
     def log_scalar(self, tag, value, step):
@@ -60,8 +68,8 @@ def test_q_learning_on_non_slippery_frozen_lake_finds_the_planners_optimum(explo
     agent = new_agent(vec, learning_rate=0.5, **exploration).learn(vec, 8000, seed=1,
                                                                    logger=curves)
     # FrozenLake pays 1 at the goal and nothing else; it reports no drive.
-    assert {v for _, v in curves.points["charts/episodic_return"]} == {0.0, 1.0}
-    assert set(curves.points) == {"charts/episodic_return", "charts/episodic_length"}
+    assert {v for _, v in curves.points[EPISODE_RETURN]} == {0.0, 1.0}
+    assert set(curves.points) == {EPISODE_RETURN, EPISODE_LENGTH}
     value, optimum = greedy_start_value(agent, slippery=False, gamma=GAMMA)
     # Source: Watkins & Dayan (1992) convergence of Q-learning, checked against the exact
     # planner (itself checked against the analytic gamma^5 in test_planner.py).
@@ -226,17 +234,17 @@ def test_episode_curves_agree_with_gymnasium_episode_statistics():
     vec.step = recording_step
     agent = new_agent(vec, gamma=0.95)
     agent.learn(vec, 8 * 400, seed=2, logger=curves)
-    returns = [v for _, v in curves.points["charts/episodic_return"]]
-    lengths = [v for _, v in curves.points["charts/episodic_length"]]
+    returns = [v for _, v in curves.points[EPISODE_RETURN]]
+    lengths = [v for _, v in curves.points[EPISODE_LENGTH]]
     # Source: gymnasium.wrappers.vector.RecordEpisodeStatistics (same episodes, same order
     # within a step: copy index).
     assert len(returns) == len(recorded) > 10
     np.testing.assert_allclose(returns, [r for r, _ in recorded], rtol=1e-5)
     np.testing.assert_array_equal(lengths, [n for _, n in recorded])
-    for tag in ("charts/discounted_drive", "charts/time_in_band", "charts/deviation/energy",
-                "charts/deviation/water"):
+    for tag in (DISCOUNTED_DRIVE, TIME_IN_BAND, deviation_tag("energy"),
+                deviation_tag("water")):
         assert len(curves.points[tag]) == len(returns)
-    assert all(0.0 <= v <= 1.0 for _, v in curves.points["charts/time_in_band"])
+    assert all(0.0 <= v <= 1.0 for _, v in curves.points[TIME_IN_BAND])
 
 
 def test_stability_curves_follow_the_episode_trace_and_the_tasks_drive():
@@ -260,8 +268,8 @@ def test_stability_curves_follow_the_episode_trace_and_the_tasks_drive():
         return result
 
     vec.reset, vec.step = recording_reset, recording_step
-    curves = _Curves()
-    new_agent(vec, gamma=gamma).learn(vec, 200, seed=4, logger=curves)
+    curves = _Curves(discount=gamma)  # the scoring discount, not the agent's 0.5
+    new_agent(vec, gamma=0.5).learn(vec, 200, seed=4, logger=curves)
 
     # The reference: split the trace into episodes h_0..h_T and score each with the
     # task's own drive object and comfort bands.
@@ -279,16 +287,16 @@ def test_stability_curves_follow_the_episode_trace_and_the_tasks_drive():
         level = np.array([h for h, _ in episode])
         set_point = np.array([h_star for _, h_star in episode])
         # Source: the task's drive object (interfaces: never reimplement the drive) and
-        # the episode-trace definition D(h_0)..D(h_T) discounted by gamma^t.
-        drive = core.drive(level, set_point)
+        # the convention of needbench.agents.curves: D(h_0)..D(h_{T-1}) discounted by gamma^t.
+        drive = core.drive(level, set_point)[:-1]
         expected_drive.append(float(np.sum(gamma ** np.arange(len(drive)) * drive)))
         deviation = (level[1:] - set_point[1:]) / core.band
         expected_band.append(float(np.mean(np.all(np.abs(deviation) <= 1.0, axis=1))))
         expected_energy.append(float(np.mean(np.abs(deviation[:, 0]))))
     logged = {tag: [v for _, v in points] for tag, points in curves.points.items()}
-    np.testing.assert_allclose(logged["charts/discounted_drive"], expected_drive, rtol=1e-9)
-    np.testing.assert_allclose(logged["charts/time_in_band"], expected_band, rtol=1e-9)
-    np.testing.assert_allclose(logged["charts/deviation/energy"], expected_energy, rtol=1e-9)
+    np.testing.assert_allclose(logged[DISCOUNTED_DRIVE], expected_drive, rtol=1e-9)
+    np.testing.assert_allclose(logged[TIME_IN_BAND], expected_band, rtol=1e-9)
+    np.testing.assert_allclose(logged[deviation_tag("energy")], expected_energy, rtol=1e-9)
 
 
 def test_tabular_q_keeps_menu_bodies_alive_longer_than_random_actions():

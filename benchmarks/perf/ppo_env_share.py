@@ -4,8 +4,8 @@ Trains the ``ppo`` agent (Stable-Baselines3 PPO through needbench's adapter,
 with the task kind's default settings unless ``--copies`` is given) for a
 fixed budget, with timers round the task engine's own calls
 (``TaskCore.step``, ``reset``, ``observe`` and ``body_info``, which the
-single env, the native vector env and the adapter's batched copies all go
-through), and prints the engine's seconds, the whole ``learn()`` seconds and
+single env and the native vector env behind the SB3 adapter go through),
+and prints the engine's seconds, the whole ``learn()`` seconds and
 their ratio. The rest is SB3 (the policy's forward passes, the rollout
 buffer, the gradient updates), VecNormalize and the adapter's per-copy infos.
 Target: under 10 % on needbench/Forage-v0. It prints the figures; it asserts
@@ -26,11 +26,12 @@ from collections.abc import Iterator
 import gymnasium as gym
 
 import needbench.envs  # noqa: F401  (registers the tasks)
+from needbench.agents.base import learning_env
 from needbench.agents.deep import PPOAgent
 from needbench.envs.task import TaskCore
 
 TARGET_SHARE = 0.10
-#: The engine's calls that every shell (single, vector, the adapter's copies) makes.
+#: The engine's calls that every shell (single, vector) makes.
 ENGINE_CALLS = ("step", "reset", "observe", "body_info")
 
 
@@ -66,16 +67,17 @@ def timed_engine() -> Iterator[dict[str, float]]:
 
 def measure(task: str, steps: int, seed: int, copies: int | None) -> dict[str, float]:
     """Seconds of engine calls and of the whole ``learn`` for one PPO run."""
-    env = gym.make(task)
+    single = gym.make(task)
     settings = {} if copies is None else {"n_envs": copies}
-    agent = PPOAgent(env.observation_space, env.action_space, **settings)
+    agent = PPOAgent(single.observation_space, single.action_space, **settings)
+    env = learning_env(agent, task)
     agent.learn(env, 0, seed=seed)  # builds the model and imports torch outside the clock
     with timed_engine() as figures:
         start = time.perf_counter()
         agent.learn(env, steps, seed=seed)
         total = time.perf_counter() - start
     return {**figures, "steps": agent.model.num_timesteps, "learn": total,
-            "copies": agent.model.n_envs, "path": type(agent.model.get_env().unwrapped).__name__}
+            "copies": agent.model.n_envs, "path": type(env.unwrapped).__name__}
 
 
 def main(argv: list[str] | None = None) -> None:
