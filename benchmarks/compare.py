@@ -88,8 +88,8 @@ class Comparison:
             "note": self.note, "rows": []}
         for row in self.rows:
             entry = asdict(row)
-            entry["probability"] = dict(zip(("value", "low", "high"), row.probability))
-            entry["difference"] = dict(zip(("value", "low", "high"), row.difference))
+            entry["probability"] = dict(zip(("value", "low", "high"), row.probability, strict=True))
+            entry["difference"] = dict(zip(("value", "low", "high"), row.difference, strict=True))
             record["rows"].append(entry)
         return json.dumps(record, indent=2)
 

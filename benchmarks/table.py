@@ -15,6 +15,7 @@ import io
 import json
 import sys
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 #: The results table: (metric key of a run summary, column title, higher is better).
@@ -26,6 +27,7 @@ TABLE_METRICS = (
 )
 
 
+@dataclass
 class Cell:
     """One row of the results table: the runs of one agent on one task at one sweep point.
 

@@ -88,6 +88,11 @@ class Need:
             raise ConfigError(f"{path}.uptake_rate", self.uptake_rate, "a rate > 0 (inf: at once)")
         check_range(f"{path}.adaptation_rate", self.adaptation_rate, 0.0, 1.0)
         check_non_negative(f"{path}.noise", self.noise)
+        if not self.lethal_low < self.lethal_high:
+            raise ConfigError(
+                f"{path}.lethal_low/lethal_high", (self.lethal_low, self.lethal_high),
+                "lethal_low < lethal_high (are the two bounds swapped?)",
+            )
         if not self.lethal_low < self.set_point < self.lethal_high:
             raise ConfigError(
                 f"{path}.set_point", self.set_point,

@@ -49,7 +49,17 @@ class Preset:
             if name not in self.needs:
                 raise ConfigError("needs", name, "one of " + ", ".join(self.needs))
         chosen = {name: self.needs[name] for name in names}
-        for need in extra:
+        if isinstance(extra, (str, bytes, Need)) or not isinstance(extra, Iterable) \
+                or isinstance(extra, Mapping):
+            raise ConfigError("extra_needs", extra, "a list of Need objects")
+        for index, need in enumerate(extra):
+            if not isinstance(need, Need):
+                raise ConfigError(f"extra_needs[{index}]", need, "a Need object")
+            if need.name in chosen:
+                where = "an earlier extra need" if need.name not in self.needs else \
+                    "a need of the preset (change it with need_overrides)"
+                raise ConfigError(f"extra_needs[{index}].name", need.name,
+                                  f"a name not taken already: {need.name!r} is {where}")
             chosen[need.name] = need
         for name, changes in (overrides or {}).items():
             if name not in chosen:

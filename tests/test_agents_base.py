@@ -13,6 +13,7 @@ from gymnasium import spaces
 from gymnasium.vector import SyncVectorEnv, VectorEnv
 from scipy import stats
 
+import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.agents import registry
 from needbench.agents.base import (
     Agent,
@@ -25,7 +26,6 @@ from needbench.agents.base import (
     exploration_keys,
 )
 from needbench.agents.curves import EPISODE_RETURN
-import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.agents.random_agent import RandomAgent
 from needbench.agents.registry import AGENTS, make_agent, register_agent
 from needbench.envs.errors import ConfigError

@@ -21,10 +21,10 @@ from scipy import stats
 import needbench.envs
 from needbench.agents.registry import AGENTS
 from needbench.benchmarks.cli import builtin_suites, load_suite, main
-from needbench.benchmarks.table import Cell, format_table
 from needbench.benchmarks.runner import run_suite
 from needbench.benchmarks.spec import expand, parse_suite
 from needbench.benchmarks.store import Store
+from needbench.benchmarks.table import Cell, format_table
 
 # Menu with deterministic agents (tabular-q acts greedily; random is seeded by learn)
 # and Arena, where tabular-q does not apply (continuous actions) and is not run.

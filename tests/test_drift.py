@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 
 import needbench.envs  # noqa: F401  (registers the tasks)
-from needbench.envs.tasks.drift import ALLOSTASIS_RATE, VALLEY_ITEMS, DriftEnv, DriftVectorEnv
 from needbench.envs.errors import ConfigError
+from needbench.envs.tasks.drift import ALLOSTASIS_RATE, VALLEY_ITEMS, DriftEnv, DriftVectorEnv
 
 REST, SEEDS, BROOK, APPLES = range(4)
 

@@ -77,7 +77,8 @@ def test_cache_in_numba_cache_dir_serves_a_read_only_package(tmp_path):
         env = gym.make("needbench/Menu-v0")
         env.reset(seed=0)
         env.step(1)
-        print(sum(menu._step.stats.cache_hits.values()), sum(menu._step.stats.cache_misses.values()))
+        stats = menu._step.stats
+        print(sum(stats.cache_hits.values()), sum(stats.cache_misses.values()))
     """)
     env = {**os.environ, "NUMBA_CACHE_DIR": str(cache)}
     runs = [subprocess.run([sys.executable, "-c", script], env=env, capture_output=True,

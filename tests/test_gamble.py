@@ -8,8 +8,8 @@ import pytest
 
 import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.envs.errors import ConfigError
-from needbench.envs.tasks.gamble import DEEP_NET, HANDLINE, REST, GambleEnv, GambleVectorEnv
 from needbench.envs.physiology import BodyState
+from needbench.envs.tasks.gamble import DEEP_NET, HANDLINE, REST, GambleEnv, GambleVectorEnv
 
 #: A body whose catch acts at once and that does not drain, so one step moves
 #: energy by exactly the dose and the expected rewards have a closed form.

@@ -8,8 +8,8 @@ import pytest
 
 import needbench.envs  # noqa: F401  (registers the tasks)
 from needbench.envs.errors import ConfigError
-from needbench.envs.tasks.lure import FAIR_STALLS, LureEnv, LureVectorEnv
 from needbench.envs.physiology import BodyState
+from needbench.envs.tasks.lure import FAIR_STALLS, LureEnv, LureVectorEnv
 
 BUN, WATER, FUDGE = 1, 2, 3
 

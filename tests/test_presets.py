@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 
 from needbench.envs.errors import ConfigError
+from needbench.envs.needs import Need
 from needbench.envs.presets import (
     HYPOTHERMIA_C,
     KCAL_PER_GLUCOSE_UNIT,
@@ -108,3 +109,29 @@ def test_working_body_settles_near_a_degree_above_the_set_point():
     heat = -body.activity_cost[0]
     assert state.level[0, 0] - 37.0 == pytest.approx(heat / (0.1 + 2.0), abs=1e-6)
     assert 0.5 < state.level[0, 0] - 37.0 < 1.5
+
+
+@pytest.mark.parametrize(("extra", "path"), [
+    ({"name": "salt"}, "extra_needs"),
+    ("salt", "extra_needs"),
+    ([{"name": "salt"}], r"extra_needs\[0\]"),
+])
+def test_extra_needs_must_be_a_list_of_needs(extra, path):
+    with pytest.raises(ConfigError, match=path):
+        abstract().physiology(["energy"], extra=extra)
+
+
+def test_an_extra_need_may_not_take_a_name_already_in_the_body():
+    salt = Need("salt", unit="mmol/L", set_point=140.0, band=5.0, lethal_low=115.0,
+                lethal_high=165.0, initial_low=138.0, initial_high=142.0)
+    with pytest.raises(ConfigError, match="earlier extra need"):
+        abstract().physiology(["energy"], extra=[salt, salt])
+    energy = salt.with_(name="energy")
+    with pytest.raises(ConfigError, match="need_overrides"):
+        abstract().physiology(["energy"], extra=[energy])
+
+
+def test_swapped_lethal_bounds_are_named_as_such():
+    with pytest.raises(ConfigError, match="swapped"):
+        Need("x", unit="u", set_point=0.0, band=1.0, lethal_low=5.0, lethal_high=-5.0,
+             initial_low=0.0, initial_high=0.0)

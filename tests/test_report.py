@@ -408,7 +408,7 @@ def test_palette_neighbours_differ_in_lightness_too():
     luminance = [_relative_luminance(colour) for colour in colours]
     # Common practice, no source: neighbours that differ in lightness stay apart in
     # grey print and for readers who confuse hues.
-    assert min(abs(a - b) for a, b in zip(luminance, luminance[1:])) >= 0.05
+    assert min(abs(a - b) for a, b in zip(luminance, luminance[1:], strict=False)) >= 0.05
     # Against the white page every colour keeps a contrast ratio of 2 or more
     # (WCAG 2.1 contrast ratio (L1 + 0.05) / (L2 + 0.05)).
     assert all(1.05 / (value + 0.05) >= 2.0 for value in luminance)

@@ -49,7 +49,6 @@ import gymnasium as gym
 import numpy as np
 
 import needbench.envs
-from needbench.envs.task import TaskCore
 
 #: Vector targets that differ from 0.5 (ForageWide's observation has 203 numbers).
 VECTOR_TARGETS = {"Forage": 0.25, "ForageWide": 0.1}
@@ -233,8 +232,6 @@ def ppo_rows(steps: int) -> list[Row]:
     from stable_baselines3 import PPO
     from stable_baselines3.common.env_util import make_vec_env
 
-    from needbench.agents.registry import make_agent
-
     task_id = "needbench/Forage-v0"
     rows = []
 
@@ -264,47 +261,14 @@ def ppo_rows(steps: int) -> list[Row]:
     rows.append(Row("ppo/make_vec_env", share, total, share, 0.15, False, "share",
                     f"env share of {total:.1f} s of PPO training ({steps} steps, 8 copies)"))
 
-    env = gym.make_vec(task_id, num_envs=8, vectorization_mode="vector_entry_point")
-    agent = make_agent("ppo", env.single_observation_space, env.single_action_space)
-    timed_total = {}
+    from needbench.benchmarks.perf.ppo_env_share import ENGINE_CALLS, measure
 
-    def learn_ours():
-        timed_total["share"] = _engine_share(lambda: agent.learn(env, steps, seed=0))
-
-    start = time.perf_counter()
-    learn_ours()
-    total = time.perf_counter() - start
-    share = timed_total["share"]
-    rows.append(Row("ppo/needbench", share, total, share, 0.10, False, "share",
-                    f"engine share of {total:.1f} s of PPO training through needbench's adapter"))
+    figures = measure(task_id, steps, seed=0, copies=None)
+    share = sum(figures[name] for name in ENGINE_CALLS) / figures["learn"]
+    rows.append(Row("ppo/needbench", share, figures["learn"], share, 0.10, False, "share",
+                    f"engine share of {figures['learn']:.1f} s of PPO training through "
+                    f"needbench's adapter ({figures['copies']} copies)"))
     return rows
-
-
-def _engine_share(learn: Callable[[], None]) -> float:
-    """Share of ``learn``'s wall time spent in the task engine (TaskCore's step,
-    reset and observation calls, which every needbench path goes through)."""
-    names = ("step", "reset", "observation", "info", "body_info", "outcome")
-    spent, originals = [0.0], {name: getattr(TaskCore, name) for name in names}
-
-    def timed(method):
-        def run(self, *args, **kwargs):
-            start = time.perf_counter()
-            try:
-                return method(self, *args, **kwargs)
-            finally:
-                spent[0] += time.perf_counter() - start
-        return run
-
-    for name, method in originals.items():
-        setattr(TaskCore, name, timed(method))
-    try:
-        start = time.perf_counter()
-        learn()
-        total = time.perf_counter() - start
-    finally:
-        for name, method in originals.items():
-            setattr(TaskCore, name, method)
-    return spent[0] / total
 
 
 def tabular_rows(steps: int) -> list[Row]:

@@ -3,8 +3,9 @@
 Trains the ``ppo`` agent (Stable-Baselines3 PPO through needbench's adapter,
 with the task kind's default settings unless ``--copies`` is given) for a
 fixed budget, with timers round the task engine's own calls
-(``TaskCore.step``, ``reset``, ``observe`` and ``body_info``, which the
-single env and the native vector env behind the SB3 adapter go through),
+(``TaskCore.step``, ``reset`` and the calls that hand out observations,
+outcomes and infos, which the single env and the native vector env behind
+the SB3 adapter go through),
 and prints the engine's seconds, the whole ``learn()`` seconds and
 their ratio. The rest is SB3 (the policy's forward passes, the rollout
 buffer, the gradient updates), VecNormalize and the adapter's per-copy infos.
@@ -32,7 +33,10 @@ from needbench.envs.task import TaskCore
 
 TARGET_SHARE = 0.10
 #: The engine's calls that every shell (single, vector) makes.
-ENGINE_CALLS = ("step", "reset", "observe", "body_info")
+#: The task engine's calls that a step or reset goes through (the kernels and the
+#: copies of their results handed out).
+ENGINE_CALLS = ("step", "reset", "observe", "observation", "outcome", "info", "body_info",
+                "single_info")
 
 
 @contextlib.contextmanager
