@@ -14,6 +14,8 @@ around the kernels only validates actions and fills ``info``.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from needbench.envs.compiled import inline_kernel, kernel
@@ -126,3 +128,25 @@ def refresh(engine):
         engine[DRIVE][b] = drive_of(level, b, set_point, b, engine[DRIVE_TABLE],
                                     engine[DRIVE_EXPONENTS])
         _internal_state(engine, b)
+
+
+@kernel
+def box_violation(values, low, high):
+    """0 if every value is finite and inside [low, high] (flat arrays of one
+    length), 1 if one is NaN or infinite, 2 if one is outside the bounds."""
+    for i in range(values.shape[0]):
+        value = values[i]
+        if not math.isfinite(value):
+            return 1
+        if value < low[i] or value > high[i]:
+            return 2
+    return 0
+
+
+@kernel
+def discrete_violation(values, start, count):
+    """True if some action is outside start .. start + count - 1."""
+    for i in range(values.shape[0]):
+        if values[i] < start or values[i] >= start + count:
+            return True
+    return False

@@ -81,6 +81,8 @@ from needbench.envs.engine import (
     TERMINATED,
     TRUNCATED,
     USES_AMBIENT,
+    box_violation,
+    discrete_violation,
     refresh,
 )
 from needbench.envs.errors import ActionError, ConfigError, check_choice
@@ -315,6 +317,7 @@ class TaskCore:
         self._events = tuple(self.events.values())
         self._constants = self.world.constants()
         self._all = np.ones(batch, dtype=np.bool_)
+        self._box_bounds: dict[tuple[int, ...], tuple[np.ndarray, np.ndarray]] = {}
         self._started = False
         # info: (name, array) pairs read after each step; the body's part first.
         self._body_info = (("level", engine[LEVEL]), ("set_point", engine[SET_POINT]),
@@ -447,22 +450,32 @@ class TaskCore:
         return lattice_model(self, resolution)
 
     def validate_actions(self, actions: Any, space: spaces.Space) -> np.ndarray:
-        """Check a batch of actions against the batched action space."""
+        """Check a batch of actions against the batched action space (compiled checks)."""
+        single = self.world.action_space
+        arr = np.asarray(actions)
         if isinstance(space, spaces.Box):
-            arr = np.asarray(actions)
             if arr.shape != space.shape:
                 raise ActionError(f"actions of shape {arr.shape} given; expected {space.shape}")
-            if not np.issubdtype(arr.dtype, np.number):
+            if arr.dtype.kind not in "iuf":
                 raise ActionError(f"actions of dtype {arr.dtype} given; expected numbers")
-            if not np.all(np.isfinite(arr)):
+            values = np.ascontiguousarray(arr, dtype=np.float64)
+            bounds = self._box_bounds.get(space.shape)
+            if bounds is None:
+                bounds = self._box_bounds[space.shape] = (
+                    np.ascontiguousarray(np.broadcast_to(space.low, space.shape), np.float64)
+                    .reshape(-1), np.ascontiguousarray(np.broadcast_to(space.high, space.shape),
+                                                       np.float64).reshape(-1))
+            problem = box_violation(values.reshape(-1), *bounds)
+            if problem == 1:
                 raise ActionError("actions contain NaN or inf")
-            if np.any(arr < space.low) or np.any(arr > space.high):
+            if problem == 2:
                 raise ActionError(f"actions outside [{space.low.min()}, {space.high.max()}]")
-            return np.ascontiguousarray(arr, dtype=np.float64)
-        arr = np.asarray(actions)
+            return values
         if arr.dtype.kind == "f" and np.all(np.isfinite(arr)) and np.all(arr == np.round(arr)):
             arr = arr.astype(np.int64)
-        if arr.dtype.kind not in "iu" or not space.contains(arr.astype(space.dtype)):
+        if arr.dtype.kind not in "iu" or arr.shape != space.shape or discrete_violation(
+                np.ascontiguousarray(arr, dtype=np.int64).reshape(-1), int(single.start),
+                int(single.n)):
             raise ActionError(f"actions {actions!r} are not in {space}")
         return np.ascontiguousarray(arr, dtype=np.int64)
 
