@@ -16,6 +16,9 @@ of B copies is a dict of arrays with a leading batch axis:
 * ``stock``: (B, H, W) food on each fig bush, in band units of energy (0 off bushes).
 * ``position``: (B, 2) int64 row and column of the agent.
 * ``clock``: (B,) int64 steps since the episode began (the episode starts at dawn).
+* ``sources``: (B, 1 + H W) int64, the count then the flat indices of the food,
+  water and shade cells, listed at reset (and afresh by ``core.observe()``, so
+  terrain written from outside is seen there) for the nearest-source search.
 """
 
 from __future__ import annotations
@@ -147,6 +150,48 @@ def nearest_sources(b, terrain, stock, position, bite):
 
 
 @inline_kernel
+def nearest_listed_sources(b, terrain, stock, position, bite, sources):
+    """:func:`nearest_sources` over the copy's listed source cells only (``sources[b, 0]``
+    cells, flat indices in row-major order, from :func:`list_sources`): the same
+    keys, so the same answer, without scanning sand and walls."""
+    columns = terrain.shape[2]
+    cells = terrain.shape[1] * columns
+    row, column = position[b, 0], position[b, 1]
+    ready = food = water = shade = _NONE
+    for j in range(1, sources[b, 0] + 1):
+        flat = sources[b, j]
+        r, c = flat // columns, flat % columns
+        cell = terrain[b, r, c]
+        key = (abs(r - row) + abs(c - column)) * cells + flat
+        if cell == FOOD:
+            food = min(food, key)
+            if holds_a_bite(stock[b, r, c], bite):
+                ready = min(ready, key)
+        elif cell == WATER:
+            water = min(water, key)
+        elif cell == SHADE:
+            shade = min(shade, key)
+    if ready < _NONE:
+        food = ready
+    return (food % cells if food < _NONE else -1, water % cells if water < _NONE else -1,
+            shade % cells if shade < _NONE else -1)
+
+
+@inline_kernel
+def list_sources(b, terrain, sources):
+    """List copy ``b``'s food, water and shade cells (row-major) in ``sources[b]``."""
+    columns = terrain.shape[2]
+    count = 0
+    for r in range(terrain.shape[1]):
+        for c in range(columns):
+            cell = terrain[b, r, c]
+            if cell == FOOD or cell == WATER or cell == SHADE:
+                count += 1
+                sources[b, count] = r * columns + c
+    sources[b, 0] = count
+
+
+@inline_kernel
 def offset_to(b, cell, columns, position):
     """(rows, columns) offset from copy ``b``'s agent to flat ``cell``; (0, 0) for -1."""
     if cell < 0:
@@ -242,7 +287,8 @@ def lay_out_garden(b, sites, counts, pillar_chance, capacity, terrain, stock, po
 
 
 @inline_kernel
-def observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine, day_cosine,
+def observe_garden(b, terrain, stock, position, clock, sources, capacity, bite, day_sine,
+                   day_cosine,
                    full_view, radius, observation, at):
     """Copy ``b``'s world features from column ``at`` of ``observation``: position,
     time of day and the view (the deviations before them: ``observe_internal``).
@@ -259,7 +305,8 @@ def observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine,
     observation[b, at + 3] = np.float32(day_cosine[hour])
     if full_view:
         # Food offset and stock, water offset, shade offset.
-        food_cell, water_cell, shade_cell = nearest_sources(b, terrain, stock, position, bite)
+        food_cell, water_cell, shade_cell = nearest_listed_sources(b, terrain, stock, position,
+                                                                   bite, sources)
         slot = at + 4
         for kind, cell in enumerate((food_cell, water_cell, shade_cell)):
             row_offset, column_offset = offset_to(b, cell, columns, position)
@@ -294,13 +341,13 @@ def observe_copies(mask, constants, state, engine):
     capacity, bite = numbers[FOOD_CAPACITY], numbers[BITE]
     day_sine, day_cosine = by_hour[DAY_SINE], by_hour[DAY_COSINE]
     full_view, radius = counts[FULL_VIEW] != 0, counts[VIEW_RADIUS]
-    terrain, stock, position, clock = state
+    terrain, stock, position, clock, sources = state
     observation = engine[OBSERVATION]
     at = int(engine[OPTIONS][WORLD_OFFSET])
     for b in range(position.shape[0]):
         if mask is None or mask[b]:
             observe_internal(engine, b)
-            observe_garden(b, terrain, stock, position, clock, capacity, bite, day_sine,
+            observe_garden(b, terrain, stock, position, clock, sources, capacity, bite, day_sine,
                            day_cosine, full_view, radius, observation, at)
 
 
@@ -308,13 +355,14 @@ def observe_copies(mask, constants, state, engine):
 def _reset(mask, constants, state, engine):
     sites, counts, numbers = constants[0], constants[1], constants[2]
     best_keys, order = constants[7], constants[8]
-    terrain, stock, position, clock = state
+    terrain, stock, position, clock, sources = state
     keys, counters = engine[KEYS], engine[COUNTERS]
     for b in range(mask.shape[0]):
         if mask[b]:
             reset_body(engine, b)
             lay_out_garden(b, sites, counts, numbers[PILLAR_CHANCE], numbers[FOOD_CAPACITY],
                            terrain, stock, position, clock, best_keys, order, keys, counters)
+            list_sources(b, terrain, sources)
     observe_copies(mask, constants, state, engine)
 
 
@@ -329,7 +377,7 @@ def _step(actions, constants, state, events, engine):
     food_to_intake, water_to_intake = by_need[FOOD_TO_INTAKE], by_need[WATER_TO_INTAKE]
     neutral_ambient, air_to_ambient = by_need[NEUTRAL_AMBIENT], by_need[AIR_TO_AMBIENT]
     sun_to_forcing = by_need[SUN_TO_FORCING]
-    terrain, stock, position, clock = state
+    terrain, stock, position, clock, _ = state
     eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event, where = events
     intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
     activity, task = engine[ACTIVITY], engine[TASK]
@@ -372,6 +420,11 @@ def _step(actions, constants, state, events, engine):
 
 @kernel
 def _observe(constants, state, engine):
+    # Called from Python (TaskCore.observe): terrain written from outside since the
+    # last reset is listed afresh before the search.
+    terrain, sources = state[0], state[4]
+    for b in range(terrain.shape[0]):
+        list_sources(b, terrain, sources)
     observe_copies(None, constants, state, engine)
 
 
@@ -534,7 +587,10 @@ class ForageWorld(World):
         shape = (batch, self.rows, self.columns)
         return {"terrain": np.full(shape, WALL, dtype=np.int8), "stock": np.zeros(shape),
                 "position": np.ones((batch, 2), dtype=np.int64),
-                "clock": np.zeros(batch, dtype=np.int64)}
+                "clock": np.zeros(batch, dtype=np.int64),
+                # Count, then flat indices of the food, water and shade cells (row-major),
+                # listed at reset: the nearest-source search skips sand and walls.
+                "sources": np.zeros((batch, 1 + self.rows * self.columns), dtype=np.int64)}
 
     def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
         return {"eaten": np.zeros(batch), "drunk": np.zeros(batch),
