@@ -39,6 +39,7 @@ from typing import Any
 
 import numpy as np
 
+from needbench.agents.curves import EPISODE_RETURN, TIME_IN_BAND
 from needbench.envs.errors import ConfigError, check_choice
 
 FORMATS = ("html", "md")
@@ -52,10 +53,11 @@ MIN_RUNS_FOR_INTERVAL = 3
 #: Said on a figure where some estimate has no interval.
 NO_INTERVAL_NOTE = f"no whiskers where fewer than {MIN_RUNS_FOR_INTERVAL} runs"
 
-#: Learning-curve scalar names, newest first; the first one a run logged is used.
+#: Learning-curve scalar names (the names agents log, needbench.agents.curves); the
+#: first one a run logged is used.
 CURVE_NAMES: dict[str, tuple[str, ...]] = {
-    "return": ("episode/return", "charts/episodic_return"),
-    "time_in_band": ("stability/time_in_band", "charts/time_in_band"),
+    "return": (EPISODE_RETURN,),
+    "time_in_band": (TIME_IN_BAND,),
 }
 #: Titles (with units) of the learning-curve panels.
 CURVE_TITLES = {"return": "episode return (reward units)",
