@@ -442,7 +442,7 @@ def _watched_agent(args: argparse.Namespace, task_id: str, interactive: bool):
     """The agent ``watch`` shows: loaded from --agent-file, or built (--set) and taught."""
     import gymnasium as gym
 
-    from needbench.agents.base import Agent, learning_env
+    from needbench.agents.base import Agent, NotApplicableError, learning_env
     from needbench.agents.registry import check_agent_name, make_agent
 
     settings = parse_settings(args.set)
@@ -463,14 +463,19 @@ def _watched_agent(args: argparse.Namespace, task_id: str, interactive: bool):
             return agent
         name = check_agent_name(args.agent)
         agent = make_agent(name, probe.observation_space, probe.action_space, **settings)
+    except NotApplicableError as error:
+        raise _not_applicable(args.agent, task_id, error) from None
     finally:
         probe.close()
     learning = learning_env(agent, task_id)
     try:
         if not agent.learns_from_experience:
+            try:
+                agent.learn(learning, 0, args.seed, None)
+            except NotApplicableError as error:
+                raise _not_applicable(name, task_id, error) from None
             print(f"{name} does not learn from experience: it reads the task and acts at once "
                   "(--learn-steps does not apply)")
-            agent.learn(learning, 0, args.seed, None)
         elif args.learn_steps:
             print(f"{name} learns for {args.learn_steps:,} steps first (a short budget; "
                   "--learn-steps N changes it)")
@@ -483,6 +488,12 @@ def _watched_agent(args: argparse.Namespace, task_id: str, interactive: bool):
     finally:
         learning.close()
     return agent
+
+
+def _not_applicable(name: str, task_id: str, error: Any) -> ConfigError:
+    """The error of an agent that does not handle the task, in plain words."""
+    return ConfigError("--agent", name, f"an agent that handles {task_id} ({name} needs "
+                       f"{error.allowed}; `needbench run` lists such pairs as not applicable)")
 
 
 #: Discount of the watched episode's discounted drive and of the learning curves shown.

@@ -386,6 +386,13 @@ def test_watch_settings_are_checked_by_the_agents_dataclass(capsys):
     assert "learning_rate" in capsys.readouterr().err
     assert main(["watch", "Menu", "--agent", "tabular-q", "--set", "learning_rate"]) == 2
     assert "KEY=VALUE" in capsys.readouterr().err
+    # A pair the agent does not handle is named in plain words, as `run` lists it.
+    assert main(["watch", "Arena", "--agent", "tabular-q"]) == 2
+    error = capsys.readouterr().err
+    assert "an agent that handles needbench/Arena-v0" in error and "Discrete" in error
+    assert main(["watch", "Forewarn", "--agent", "setpoint-controller"]) == 2
+    printed = capsys.readouterr()
+    assert "handles needbench/Forewarn-v0" in printed.err and "acts at once" not in printed.out
 
 
 KEEP_SUITE = """

@@ -261,7 +261,7 @@ class ForewarnWorld(World):
                 np.isin(np.round(distance).astype(int) % 14, (0, 1)) & (distance < 60)
             picture[waves] = (250, 235, 140)
         # The shepherd.
-        centre = 280
+        centre = 372
         coat = bool(state["coat"][index])
         head = np.hypot(rows - 108, columns - centre)
         body = (rows >= 124) & (rows < horizon + 6) & (np.abs(columns - centre) <= 18)
