@@ -509,11 +509,11 @@ def command_watch(args: argparse.Namespace) -> int:
 
     task_id = resolve_task(args.task)
     interactive = sys.stdout.isatty()
+    agent = _watched_agent(args, task_id, interactive)
     frames = None
-    if args.frames is not None:
+    if args.frames is not None:  # made once the agent is ready, so a bad option leaves none
         frames = Path(args.frames)
         frames.mkdir(parents=True, exist_ok=True)
-    agent = _watched_agent(args, task_id, interactive)
     delay = 1.0 / args.fps if interactive and args.fps > 0 else 0.0
     kwargs = {} if args.steps is None else {"max_steps": args.steps}
     env = gym.make(task_id, render_mode="ansi", **kwargs)
