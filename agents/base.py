@@ -130,6 +130,9 @@ class Agent(abc.ABC):
     Hyperparameters: ClassVar[type] = NoHyperparameters
     #: How the vector env this agent learns on autoresets (Gymnasium's modes).
     autoreset_mode: ClassVar[AutoresetMode] = AutoresetMode.NEXT_STEP
+    #: Whether ``learn`` learns from env steps. False for agents whose ``learn`` only
+    #: reads the task (a model, a seed) and ignores ``total_steps``.
+    learns_from_experience: ClassVar[bool] = True
 
     def __init__(self, observation_space: spaces.Space, action_space: spaces.Space,
                  **hyperparameters: Any):

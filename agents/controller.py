@@ -485,6 +485,7 @@ class SetpointController(Agent):
     """
 
     name = "setpoint-controller"
+    learns_from_experience = False
     Hyperparameters = ControllerHyperparameters
 
     def __init__(self, observation_space: spaces.Space, action_space: spaces.Space,

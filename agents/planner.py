@@ -427,6 +427,7 @@ class ExactPlannerAgent(Agent):
     """
 
     name = "exact-planner"
+    learns_from_experience = False
     Hyperparameters = PlannerHyperparameters
 
     def __init__(self, observation_space: spaces.Space, action_space: spaces.Space,

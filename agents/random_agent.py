@@ -24,6 +24,7 @@ class RandomAgent(Agent):
     """
 
     name = "random"
+    learns_from_experience = False
 
     def __init__(self, observation_space: spaces.Space, action_space: spaces.Space,
                  **hyperparameters: Any):

@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.resources
+import math
 import os
 import sys
 import time
@@ -35,6 +36,8 @@ STORE_NAME = "results.sqlite3"
 #: `needbench results DIR --csv`.
 CSV_NAME = "runs.csv"
 TENSORBOARD_NAME = "tensorboard"
+#: Folder of the trained agents a run keeps (``run --save-agents``).
+AGENTS_NAME = "agents"
 
 #: Seconds between progress lines when stdout is not a terminal (a log, nohup).
 PROGRESS_LINE_SECONDS = 10.0
@@ -280,8 +283,10 @@ def command_run(args: argparse.Namespace) -> int:
     if writer_backend() is None:
         print(f"needbench: {NO_WRITER_MESSAGE}", file=sys.stderr)
         tensorboard = None
+    agents = out / AGENTS_NAME if args.save_agents else None
     settings = RunSettings(tensorboard_root=None if tensorboard is None else str(tensorboard),
-                           keep_traces=args.traces, git_revision=git_revision())
+                           keep_traces=args.traces, git_revision=git_revision(),
+                           agents_root=None if agents is None else str(agents))
     with Store(out / STORE_NAME) as store:
         summary = run_suite(suite, store, workers=args.workers, backend=args.backend,
                             address=args.address, settings=settings,
@@ -311,6 +316,9 @@ def command_run(args: argparse.Namespace) -> int:
               f"the table above as CSV: needbench results {out} --csv")
         if tensorboard is not None:
             print(f"tensorboard: tensorboard --logdir {tensorboard}")
+        if agents is not None:
+            print(f"trained agents: {agents}/ (one file per run, path in the agent_file column "
+                  f"of {CSV_NAME}); replay one with needbench watch TASK --agent-file FILE")
     return 1 if failed else 0
 
 
@@ -344,39 +352,184 @@ def command_results(args: argparse.Namespace) -> int:
     return 0
 
 
+def parse_settings(pairs: list[str] | None) -> dict[str, Any]:
+    """Hyperparameters from ``KEY=VALUE`` texts (``watch --set``).
+
+    A value is read as a TOML value, as a suite's ``[agent.hyperparameters]``
+    holds it (``0.1``, ``true``, ``[64, 64]``, ``"text"``); a bare word that is
+    no TOML value is taken as a string. The agent's own hyperparameter
+    dataclass checks names and values.
+    """
+    import tomllib
+
+    values: dict[str, Any] = {}
+    for pair in pairs or ():
+        key, sep, text = pair.partition("=")
+        key, text = key.strip(), text.strip()
+        if not sep or not key or not text:
+            raise ConfigError("--set", pair, "KEY=VALUE, e.g. epsilon_end=0.1 or net_arch=[64, 64]")
+        try:
+            values[key] = tomllib.loads(f"value = {text}")["value"]
+        except tomllib.TOMLDecodeError:
+            values[key] = text
+    return values
+
+
+class LearningProgress:
+    """The logger ``watch`` hands to ``learn``: shows how far learning has got.
+
+    Agents log at episode ends and optimiser updates; each call may show the
+    steps done of the budget and the last episode's return. On a terminal the
+    line rewrites itself; elsewhere a plain line is printed at most every
+    ``every`` seconds. :meth:`close` prints the final count and the time taken.
+    """
+
+    def __init__(self, total_steps: int, discount: float, interactive: bool,
+                 every: float = 2.0, stream: Any = None):
+        self.total_steps = total_steps
+        self.discount = discount  # read by needbench.agents.curves.scoring_discount
+        self.interactive = interactive
+        self.every = 0.2 if interactive else every
+        self.stream = stream if stream is not None else sys.stdout
+        self.step = 0
+        self.last_return: float | None = None
+        self.start = time.perf_counter()
+        self._shown = -math.inf
+
+    def line(self) -> str:
+        share = self.step / self.total_steps if self.total_steps else 1.0
+        text = f"learning: {self.step:,} / {self.total_steps:,} steps ({share:.0%})"
+        if self.last_return is not None:
+            text += f", last episode return {self.last_return:.3g}"
+        return text
+
+    def log_scalar(self, tag: str, value: float, step: int) -> None:
+        self.step = max(self.step, int(step))
+        if tag == "episode/return":
+            self.last_return = float(value)
+        now = time.perf_counter()
+        if now - self._shown >= self.every:
+            self._shown = now
+            self.stream.write(("\r" + self.line() + "\x1b[K") if self.interactive
+                              else self.line() + "\n")
+            self.stream.flush()
+
+    def close(self) -> None:
+        self.step = self.total_steps
+        ending = "\r" if self.interactive else ""
+        self.stream.write(f"{ending}{self.line()}, {time.perf_counter() - self.start:.1f} s"
+                          + ("\x1b[K" if self.interactive else "") + "\n")
+        self.stream.flush()
+
+
+def _action_text(action: Any) -> str:
+    values = np.asarray(action).ravel()
+    if values.size == 1:
+        value = values[0]
+        return str(int(value)) if np.issubdtype(values.dtype, np.integer) else f"{value:.3g}"
+    return "[" + ", ".join(f"{v:.3g}" if np.issubdtype(values.dtype, np.floating) else str(v)
+                           for v in values) + "]"
+
+
+def step_caption(step: int, action: Any, reward: Any) -> str:
+    """The line above a watched frame: the step, the action taken and the reward."""
+    if action is None:
+        return "step 0: start of the episode"
+    return f"step {step}: action {_action_text(action)}, reward {float(reward):+.4g}"
+
+
+def _watched_agent(args: argparse.Namespace, task_id: str, interactive: bool):
+    """The agent ``watch`` shows: loaded from --agent-file, or built (--set) and taught."""
+    import gymnasium as gym
+
+    from needbench.agents.base import Agent, NotApplicableError, learning_env
+    from needbench.agents.registry import check_agent_name, make_agent
+
+    settings = parse_settings(args.set)
+    probe = gym.make(task_id)
+    try:
+        if args.agent_file is not None:
+            if settings:
+                raise ConfigError("--set", " ".join(args.set), "no --set with --agent-file (the "
+                                  "file holds the hyperparameters the agent learned with)")
+            agent = Agent.load(args.agent_file)
+            try:
+                agent.check_env(probe)
+            except ConfigError as error:
+                raise ConfigError("--agent-file", args.agent_file, f"an agent saved for the "
+                                  f"spaces of {task_id} ({error})") from None
+            print(f"{agent.name} loaded from {args.agent_file}; it acts as saved "
+                  "(no learning first)")
+            return agent
+        name = check_agent_name(args.agent)
+        agent = make_agent(name, probe.observation_space, probe.action_space, **settings)
+    except NotApplicableError as error:
+        raise _not_applicable(args.agent, task_id, error) from None
+    finally:
+        probe.close()
+    learning = learning_env(agent, task_id)
+    try:
+        if not agent.learns_from_experience:
+            try:
+                agent.learn(learning, 0, args.seed, None)
+            except NotApplicableError as error:
+                raise _not_applicable(name, task_id, error) from None
+            print(f"{name} does not learn from experience: it reads the task and acts at once "
+                  "(--learn-steps does not apply)")
+        elif args.learn_steps:
+            print(f"{name} learns for {args.learn_steps:,} steps first (a short budget; "
+                  "--learn-steps N changes it)")
+            progress = LearningProgress(args.learn_steps, WATCH_DISCOUNT, interactive)
+            agent.learn(learning, args.learn_steps, args.seed, progress)
+            progress.close()
+        else:
+            print(f"{name} acts without learning (--learn-steps 0)")
+            agent.learn(learning, 0, args.seed, None)
+    finally:
+        learning.close()
+    return agent
+
+
+def _not_applicable(name: str, task_id: str, error: Any) -> ConfigError:
+    """The error of an agent that does not handle the task, in plain words."""
+    return ConfigError("--agent", name, f"an agent that handles {task_id} ({name} needs "
+                       f"{error.allowed}; `needbench run` lists such pairs as not applicable)")
+
+
+#: Discount of the watched episode's discounted drive and of the learning curves shown.
+WATCH_DISCOUNT = 0.99
+
+
 def command_watch(args: argparse.Namespace) -> int:
     import gymnasium as gym
 
-    from needbench.agents.base import learning_env
-    from needbench.agents.registry import check_agent_name, make_agent
     from needbench.benchmarks.evaluate import evaluation_seeds, rollout_single
     from needbench.benchmarks.metrics import episode_metrics
+    from needbench.envs import rendering
 
     task_id = resolve_task(args.task)
-    name = check_agent_name(args.agent)
-    kwargs = {} if args.steps is None else {"max_steps": args.steps}
-    probe = gym.make(task_id)
-    agent = make_agent(name, probe.observation_space, probe.action_space)
-    probe.close()
-    learning = learning_env(agent, task_id)
-    try:
-        if args.learn_steps:
-            print(f"{name} learns for {args.learn_steps} steps first (a short budget; "
-                  "--learn-steps N changes it; agents that do not learn ignore it)")
-        else:
-            print(f"{name} acts without learning (--learn-steps 0)")
-        agent.learn(learning, args.learn_steps, args.seed, None)
-    finally:
-        learning.close()
     interactive = sys.stdout.isatty()
+    agent = _watched_agent(args, task_id, interactive)
+    frames = None
+    if args.frames is not None:  # made once the agent is ready, so a bad option leaves none
+        frames = Path(args.frames)
+        frames.mkdir(parents=True, exist_ok=True)
     delay = 1.0 / args.fps if interactive and args.fps > 0 else 0.0
+    kwargs = {} if args.steps is None else {"max_steps": args.steps}
     env = gym.make(task_id, render_mode="ansi", **kwargs)
+    count = 0
 
-    def show(shown: gym.Env) -> None:
-        frame = shown.render()
+    def show(shown: gym.Env, action: Any, reward: Any) -> None:
+        nonlocal count
+        caption = step_caption(count, action, reward)
+        if frames is not None:
+            picture = rendering.frame(shown.unwrapped.core, 0, "rgb_array")
+            rendering.write_png(rendering.with_caption(picture, caption),
+                                frames / f"frame-{count:05d}.png")
+        count += 1
         if interactive:
             sys.stdout.write("\x1b[H\x1b[2J")
-        sys.stdout.write(f"{frame}\n\n")
+        sys.stdout.write(f"{caption}\n{shown.render()}\n\n")
         sys.stdout.flush()
         if delay:
             time.sleep(delay)
@@ -386,11 +539,13 @@ def command_watch(args: argparse.Namespace) -> int:
         need_names = list(env.unwrapped.core.need_names)
     finally:
         env.close()
-    metrics = episode_metrics(trace, 0.99, need_names)
+    metrics = episode_metrics(trace, WATCH_DISCOUNT, need_names)
     ending = "terminated (a need left its viable range)" if trace["terminated"] else "truncated"
     print(f"episode of {int(metrics['length'])} steps, {ending}: return {metrics['return']:.3g}, "
-          f"discounted drive {metrics['discounted_drive']:.3g} (gamma 0.99), "
+          f"discounted drive {metrics['discounted_drive']:.3g} (gamma {WATCH_DISCOUNT}), "
           f"time in band {metrics['time_in_band']:.1%}")
+    if frames is not None:
+        print(f"frames: {count} PNG files in {frames}/")
     return 0
 
 
@@ -540,6 +695,10 @@ def build_parser() -> argparse.ArgumentParser:
                      f"{TENSORBOARD_NAME}), one sub-folder per job")
     run.add_argument("--traces", metavar="N", type=_non_negative, default=1,
                      help="evaluation episodes per job whose full trace is stored (default: 1)")
+    run.add_argument("--save-agents", action="store_true",
+                     help=f"keep every trained agent: one file per run in <out>/{AGENTS_NAME}/ "
+                     "(its path is recorded with the run); replay one with `needbench watch "
+                     "TASK --agent-file FILE`")
     run.add_argument("--max-retries", metavar="N", type=_non_negative, default=2,
                      help="reruns of a job whose worker process died or was lost (default: 2)")
     run.add_argument("--quiet", action="store_true",
@@ -570,18 +729,31 @@ def build_parser() -> argparse.ArgumentParser:
 
     watch = commands.add_parser(
         "watch", help="show an episode of an agent in the terminal",
-        description="Let an agent learn briefly, then show one episode frame by frame with "
-        "the task's text rendering, and its return, discounted drive and time in band.")
+        description="Let an agent learn briefly (or load one a run saved with --save-agents), "
+        "then show one episode frame by frame with the task's text rendering, the action "
+        "taken and the reward of every step, and the episode's return, discounted drive "
+        "and time in band.")
     watch.add_argument("task", metavar="TASK", help="task id or short name, e.g. Menu")
-    watch.add_argument("--agent", metavar="NAME", required=True, help="registered agent name")
+    who = watch.add_mutually_exclusive_group(required=True)
+    who.add_argument("--agent", metavar="NAME", help="registered agent name")
+    who.add_argument("--agent-file", metavar="FILE", default=None,
+                     help="an agent file (Agent.save; `run --save-agents` keeps one per "
+                     "run) to replay as it is, without learning")
+    watch.add_argument("--set", metavar="KEY=VALUE", action="append", default=None,
+                       help="a hyperparameter of --agent, as in a suite's "
+                       "[agent.hyperparameters] (a TOML value; repeat for several)")
     watch.add_argument("--steps", metavar="N", type=_positive, default=None,
                        help="time limit of the episode shown (default: the task's)")
     watch.add_argument("--seed", metavar="S", type=_non_negative, default=0,
                        help="seed of learning and of the episode (default: 0)")
     watch.add_argument("--learn-steps", metavar="N", type=_non_negative, default=5000,
-                       help="learning budget before the episode, env steps (default: 5000)")
+                       help="learning budget before the episode, env steps, for agents that "
+                       "learn from experience (default: 5000)")
     watch.add_argument("--fps", metavar="F", type=float, default=8.0,
                        help="frames per second on a terminal; 0 for no pause (default: 8)")
+    watch.add_argument("--frames", metavar="DIR", default=None,
+                       help="also write every frame as a PNG image (rgb_array, captioned "
+                       "with the step, action and reward) into DIR")
     watch.set_defaults(handler=command_watch)
 
     report = commands.add_parser(

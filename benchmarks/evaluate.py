@@ -117,13 +117,13 @@ def _trace_from_columns(start: Mapping[str, Any], columns: Mapping[str, np.ndarr
 
 
 def rollout_single(env: gym.Env, agent: Agent, seed: int,
-                   on_step: Callable[[gym.Env], None] | None = None) -> Trace:
-    """One episode on a single env reset with ``seed``; ``on_step(env)`` after the reset
-    and after every step (e.g. to render)."""
+                   on_step: Callable[[gym.Env, Any, Any], None] | None = None) -> Trace:
+    """One episode on a single env reset with ``seed``; ``on_step(env, action, reward)``
+    after the reset (action and reward None) and after every step (e.g. to render)."""
     band = _task_core(env).band
     observation, start = env.reset(seed=int(seed))
     if on_step is not None:
-        on_step(env)
+        on_step(env, None, None)
     steps: list[dict[str, Any]] = []
     terminated = truncated = False
     while not (terminated or truncated):
@@ -132,7 +132,7 @@ def rollout_single(env: gym.Env, agent: Agent, seed: int,
         steps.append({**{key: np.array(value, copy=True) for key, value in info.items()},
                       "action": action, "reward": reward})
         if on_step is not None:
-            on_step(env)
+            on_step(env, action, reward)
     columns = {key: np.stack([np.asarray(step[key]) for step in steps]) for key in steps[0]}
     return _trace_from_columns(start, columns, band, terminated, truncated)
 

@@ -95,12 +95,16 @@ class RunSettings:
         keep_traces: evaluation episodes per job whose full trace is stored.
         evaluation_mode: 'vector', 'sync' or 'single' (see benchmarks.evaluate).
         git_revision: commit of the checkout, recorded with every result.
+        agents_root: folder where each job saves its trained agent
+            (``Agent.save``, one ``<label>.<hash digits>.npz`` file per job,
+            the path recorded with the run), or None to keep none.
     """
 
     tensorboard_root: str | None = None
     keep_traces: int = 1
     evaluation_mode: str = "vector"
     git_revision: str | None = None
+    agents_root: str | None = None
 
     def __post_init__(self) -> None:
         if isinstance(self.keep_traces, bool) or not isinstance(self.keep_traces, int) \
@@ -161,7 +165,9 @@ def run_job(config: dict[str, Any], job_hash: str,
         A 'done' JobResult with one metrics dict per evaluation episode, the
         learning curves and the first ``settings.keep_traces`` traces; a
         'failed' one with the traceback (and the curves logged until then);
-        or :class:`NotApplicable` (module docstring).
+        or :class:`NotApplicable` (module docstring). With
+        ``settings.agents_root`` the trained agent is saved before it is
+        evaluated, and the result names its file.
     """
     import needbench.envs  # noqa: F401  (registers the tasks in this process)
     from needbench.agents.registry import AGENTS, make_agent
@@ -171,6 +177,7 @@ def run_job(config: dict[str, Any], job_hash: str,
     clock = time.perf_counter()
     logger: RunLogger | None = None
     env = None
+    agent_file: Path | None = None
     try:
         job = Job(config)
         agent_class = AGENTS[job.agent_name]
@@ -199,6 +206,11 @@ def run_job(config: dict[str, Any], job_hash: str,
             return NotApplicable(job_hash, config, str(rejection), rejection.allowed)
         env.close()
         env = None
+        if settings.agents_root is not None:
+            target = Path(settings.agents_root) / agent_file_name(job.describe(), job_hash)
+            target.parent.mkdir(parents=True, exist_ok=True)
+            agent.save(target)
+            agent_file = target
         traces = evaluate(agent, job.task_id, arguments, job.eval_episodes, job.seed,
                           mode=settings.evaluation_mode)
         episodes = evaluation_metrics(traces, job.gamma, need_names)
@@ -215,7 +227,13 @@ def run_job(config: dict[str, Any], job_hash: str,
                      finished=time.time(), wall_seconds=time.perf_counter() - clock,
                      error=error, episodes=episodes,
                      curves=list(logger.curves) if logger is not None else [],
-                     traces=traces[:settings.keep_traces], git_revision=settings.git_revision)
+                     traces=traces[:settings.keep_traces], git_revision=settings.git_revision,
+                     agent_file=None if agent_file is None else str(agent_file))
+
+
+def agent_file_name(label: str, job_hash: str) -> str:
+    """The file name of a job's saved agent: the job's readable label, 8 hash digits."""
+    return run_folder_name(label, job_hash) + ".npz"
 
 
 def failed_result(job: Job, error: str, started: float, settings: RunSettings) -> JobResult:

@@ -5,14 +5,17 @@ Tables:
     runs             one row per job: hash (primary key), suite, task_id, agent,
                      seed, sweep point and full config (JSON), status 'done' or
                      'failed', error traceback, start/finish times (ISO 8601,
-                     UTC), wall_seconds, package version, git revision.
+                     UTC), wall_seconds, package version, git revision,
+                     and the file of the trained agent if the run kept it
+                     (relative to the store's folder when it lies inside it).
     episodes         one row per evaluation episode: all metrics as JSON, plus
                      the most queried ones as plain columns ("return",
                      discounted_drive, time_in_band, survived, length).
     learning_curves  (run hash, step, metric, value) scalars logged while learning.
     traces           one row per array of an episode trace: name, dtype, shape
                      and the zlib-compressed bytes.
-    schema_version   the layout version, checked when a file is opened.
+    schema_version   the layout version, checked when a file is opened (a
+                     version-1 file gains the agent_file column on opening).
 
 The runner's driver process alone writes, one transaction per finished job
 (:meth:`Store.record_job`), so an interrupted sweep resumes with nothing lost
@@ -41,7 +44,7 @@ import numpy as np
 from needbench.benchmarks.metrics import summarise
 from needbench.envs.errors import ConfigError
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 STATUSES = ("done", "failed")
 
 # Metrics copied from the JSON into plain columns: (column, metric key, type).
@@ -69,7 +72,8 @@ _SCHEMA = (
         finished TEXT NOT NULL,
         wall_seconds REAL NOT NULL,
         package_version TEXT NOT NULL,
-        git_revision TEXT
+        git_revision TEXT,
+        agent_file TEXT
     )""",
     "CREATE INDEX IF NOT EXISTS runs_by_cell ON runs (suite, task_id, agent, status)",
     """CREATE TABLE IF NOT EXISTS episodes (
@@ -104,7 +108,7 @@ _SCHEMA = (
 
 # The columns of a run's row in exports, before its mean metrics.
 _EXPORT_COLUMNS = ("hash", "suite", "task_id", "agent", "seed", "sweep", "status",
-                   "wall_seconds", "package_version", "git_revision")
+                   "wall_seconds", "package_version", "git_revision", "agent_file")
 
 
 def _installed_version() -> str:
@@ -134,6 +138,8 @@ class JobResult:
             may be shorter than ``episodes`` when only some are kept.
         package_version: needbench version that ran the job.
         git_revision: commit of the checkout that ran the job, if known.
+        agent_file: the file the trained agent was saved to (``Agent.save``),
+            if the run kept it.
     """
 
     hash: str
@@ -148,6 +154,7 @@ class JobResult:
     traces: list[dict[str, np.ndarray]] = field(default_factory=list)
     package_version: str = field(default_factory=_installed_version)
     git_revision: str | None = None
+    agent_file: str | None = None
 
 
 # ----------------------------------------------------------------------------
@@ -177,7 +184,7 @@ def _finite_or_none(value: Any) -> float | None:
     return number if math.isfinite(number) else None
 
 
-def _run_row(result: JobResult) -> tuple:
+def _run_row(result: JobResult, folder: Path) -> tuple:
     if result.status not in STATUSES:
         raise ConfigError("result.status", result.status, "'done' or 'failed'")
     if result.status == "failed" and not result.error:
@@ -199,7 +206,20 @@ def _run_row(result: JobResult) -> tuple:
         float(result.wall_seconds),
         str(result.package_version),
         result.git_revision,
+        _stored_path(result.agent_file, folder),
     )
+
+
+def _stored_path(path: str | None, folder: Path) -> str | None:
+    """A file path as the store keeps it: relative to ``folder`` (the store's) when it lies
+    inside it, so a run folder can be moved whole; else absolute."""
+    if path is None:
+        return None
+    absolute = Path(path).resolve()
+    try:
+        return absolute.relative_to(folder.resolve()).as_posix()
+    except ValueError:
+        return str(absolute)
 
 
 def _episode_rows(result: JobResult) -> list[tuple]:
@@ -278,6 +298,13 @@ class Store:
                     (SCHEMA_VERSION,))
         versions = [row[0] for row in self._connection.execute(
             "SELECT version FROM schema_version")]
+        if versions == [1]:
+            # Version 2 only adds the runs' agent_file column (empty for older runs).
+            with self._transaction():
+                self._connection.execute("ALTER TABLE runs ADD COLUMN agent_file TEXT")
+                self._connection.execute("UPDATE schema_version SET version = ?",
+                                         (SCHEMA_VERSION,))
+            versions = [SCHEMA_VERSION]
         if versions != [SCHEMA_VERSION]:
             raise ConfigError(f"{self.path}: schema_version", versions,
                               f"[{SCHEMA_VERSION}], the layout this needbench writes; "
@@ -319,7 +346,7 @@ class Store:
         new result. If any write fails, the transaction rolls back and the
         store is as before.
         """
-        run = _run_row(result)
+        run = _run_row(result, self.path.parent)
         episodes = _episode_rows(result)
         curves = _curve_rows(result)
         traces = _trace_rows(result)  # compressed before taking the write lock
@@ -340,8 +367,8 @@ class Store:
     def _insert_run(self, row: tuple) -> None:
         self._connection.execute(
             "INSERT INTO runs (hash, suite, task_id, agent, seed, sweep, config, status, error,"
-            " started, finished, wall_seconds, package_version, git_revision)"
-            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", row)
+            " started, finished, wall_seconds, package_version, git_revision, agent_file)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", row)
 
     def _insert_episodes(self, rows: list[tuple]) -> None:
         columns = ", ".join(column for column, _, _ in _EPISODE_COLUMNS)
@@ -420,6 +447,17 @@ class Store:
             raise KeyError(f"no trace stored for run {hash!r}, episode {episode}")
         return {row["name"]: np.frombuffer(zlib.decompress(row["data"]), dtype=row["dtype"])
                 .reshape(json.loads(row["shape"])).copy() for row in rows}
+
+    def agent_file(self, hash: str) -> Path | None:
+        """The saved agent of a run (``run --save-agents``), or None if the run kept none."""
+        row = self._connection.execute("SELECT agent_file FROM runs WHERE hash = ?",
+                                       (hash,)).fetchone()
+        if row is None:
+            raise KeyError(f"no run {hash!r} in {self.path}")
+        if row["agent_file"] is None:
+            return None
+        path = Path(row["agent_file"])
+        return path if path.is_absolute() else self.path.parent / path
 
     def learning_curve(self, hash: str, metric: str) -> tuple[np.ndarray, np.ndarray]:
         """(steps, values) of one logged metric of a run, sorted by step; empty if none."""

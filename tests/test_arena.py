@@ -8,6 +8,7 @@ import pytest
 from scipy.spatial.distance import cdist
 
 import needbench.envs  # noqa: F401  (registers the tasks)
+from needbench.envs import rendering
 from needbench.envs.errors import ConfigError
 from needbench.envs.tasks.arena import ISLAND_SOURCES, ArenaEnv, ArenaVectorEnv
 
@@ -185,13 +186,17 @@ def test_reactive_controller_beats_random_wandering():
 def test_image_shows_sources_and_agent():
     env = gym.make("needbench/Arena-v0", render_mode="rgb_array")
     env.reset(seed=0)
-    picture = env.unwrapped.core.world.image(env.unwrapped.core.state, 0)
-    assert picture.shape == (64, 64, 3) and picture.dtype == np.uint8
+    core = env.unwrapped.core
+    picture = core.world.image(core.state, 0)
+    assert picture.shape == (256, 256, 3) and picture.dtype == np.uint8
     frame = env.render()
-    assert frame.shape == (64 + 8 * 3, 64, 3)
-    # Ground, at least one tinted source pixel and the white agent mark.
+    assert min(frame.shape[:2]) >= rendering.MIN_SIDE
+    # Ground, sources tinted in their needs' colours, and the agent in the agent colour.
     assert len(np.unique(picture.reshape(-1, 3), axis=0)) > 3
-    assert np.any(np.all(picture == 250, axis=2))
+    assert np.any(np.all(picture == rendering.AGENT_COLOUR, axis=2))
+    # The warm spot is drawn in the temperature colour, which no agent ever wears.
+    offset = picture.astype(float) - rendering.NEED_COLOURS["temperature"]
+    assert np.sqrt((offset ** 2).sum(axis=2)).min() < 30
     text = gym.make("needbench/Arena-v0", render_mode="ansi")
     text.reset(seed=0)
     frame = text.render()

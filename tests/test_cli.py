@@ -20,7 +20,7 @@ from scipy import stats
 
 import needbench.envs
 from needbench.agents.registry import AGENTS
-from needbench.benchmarks.cli import builtin_suites, load_suite, main
+from needbench.benchmarks.cli import builtin_suites, load_suite, main, parse_settings
 from needbench.benchmarks.runner import run_suite
 from needbench.benchmarks.spec import expand, parse_suite
 from needbench.benchmarks.store import Store
@@ -351,6 +351,89 @@ def test_watch_shows_one_frame_per_step(capsys):
     printed = capsys.readouterr().out
     assert sum(line.startswith("energy") for line in printed.splitlines()) == 6  # reset + 5
     assert "episode of 5 steps, truncated" in printed
+
+
+def test_watch_says_which_agents_learn_and_shows_action_reward_and_frames(capsys, tmp_path):
+    image = pytest.importorskip("matplotlib.image")
+    assert main(["watch", "Menu", "--agent", "setpoint-controller", "--steps", "2",
+                 "--fps", "0"]) == 0
+    printed = capsys.readouterr().out
+    assert "does not learn from experience" in printed and "learns for" not in printed
+    frames = tmp_path / "frames"
+    assert main(["watch", "Menu", "--agent", "tabular-q", "--steps", "2", "--learn-steps", "400",
+                 "--fps", "0", "--set", "epsilon_end=0.2", "--set", "exploration=softmax",
+                 "--frames", str(frames)]) == 0
+    printed = capsys.readouterr().out
+    assert "learns for 400 steps" in printed and "learning: 400 / 400 steps (100%)" in printed
+    steps = [line for line in printed.splitlines() if line.startswith("step ")]
+    assert steps[0] == "step 0: start of the episode" and len(steps) == 3
+    assert all(", reward " in line and ": action " in line for line in steps[1:])
+    files = sorted(frames.glob("frame-*.png"))
+    assert len(files) == 3 and "frames: 3 PNG files" in printed
+    for path in files:  # Source: matplotlib's PNG reader decodes what we wrote
+        assert min(image.imread(path).shape[:2]) >= 256
+
+
+def test_watch_settings_are_checked_by_the_agents_dataclass(capsys):
+    assert parse_settings(["learning_rate=0.25", "net_arch=[64, 64]", "exploration=softmax",
+                           "verbose=true", 'name="a=b"']) == {
+        "learning_rate": 0.25, "net_arch": [64, 64], "exploration": "softmax",
+        "verbose": True, "name": "a=b"}
+    assert main(["watch", "Menu", "--agent", "tabular-q", "--set", "epsilon=0.2"]) == 2
+    error = capsys.readouterr().err
+    assert "tabular-q.epsilon" in error and "did you mean" in error
+    assert main(["watch", "Menu", "--agent", "tabular-q", "--set", "learning_rate=7"]) == 2
+    assert "learning_rate" in capsys.readouterr().err
+    assert main(["watch", "Menu", "--agent", "tabular-q", "--set", "learning_rate"]) == 2
+    assert "KEY=VALUE" in capsys.readouterr().err
+    # A pair the agent does not handle is named in plain words, as `run` lists it.
+    assert main(["watch", "Arena", "--agent", "tabular-q"]) == 2
+    error = capsys.readouterr().err
+    assert "an agent that handles needbench/Arena-v0" in error and "Discrete" in error
+    assert main(["watch", "Forewarn", "--agent", "setpoint-controller"]) == 2
+    printed = capsys.readouterr()
+    assert "handles needbench/Forewarn-v0" in printed.err and "acts at once" not in printed.out
+
+
+KEEP_SUITE = """
+[suite]
+name = "keep-test"
+seeds = [3]
+eval_episodes = 2
+
+[[task]]
+id = "needbench/Menu-v0"
+
+[[agent]]
+name = "tabular-q"
+total_steps = 2000
+"""
+
+
+def test_saved_agents_replay_as_they_were_evaluated(tmp_path, capsys):
+    suite = _write(tmp_path, "keep.toml", KEEP_SUITE)
+    out = tmp_path / "out"
+    assert main(["run", str(suite), "--out", str(out), "--workers", "1", "--save-agents"]) == 0
+    assert f"trained agents: {out / 'agents'}/" in capsys.readouterr().out
+    with Store(out / "results.sqlite3") as store:
+        run = store.runs()[0]
+        path = store.agent_file(run["hash"])
+        first = store.episodes(run["hash"])[0]["metrics"]
+    assert path.is_file() and path.parent == out / "agents"
+    with (out / "runs.csv").open(newline="") as handle:
+        assert next(csv.DictReader(handle))["agent_file"] == f"agents/{path.name}"
+    # The file replays the agent that was evaluated: watch's episode (seed 3) is the run's
+    # first evaluation episode.
+    assert main(["watch", "Menu", "--agent-file", str(path), "--seed", "3", "--fps", "0"]) == 0
+    printed = capsys.readouterr().out
+    assert "loaded from" in printed and "learns for" not in printed
+    assert f"return {first['return']:.3g}," in printed
+    assert main(["watch", "Forage", "--agent-file", str(path)]) == 2
+    assert "spaces of needbench/Forage-v0" in capsys.readouterr().err
+    assert main(["watch", "Menu", "--agent-file", str(path), "--set", "gamma=0.5"]) == 2
+    assert "--agent-file" in capsys.readouterr().err
+    assert main(["watch", "Menu", "--agent-file", str(suite)]) == 2
+    assert "needbench-agent file" in capsys.readouterr().err
 
 
 def test_builtin_suites_fit_the_registries():

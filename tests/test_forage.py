@@ -10,6 +10,7 @@ import pytest
 from scipy import ndimage
 
 import needbench.envs  # noqa: F401  (registers the tasks)
+from needbench.envs import rendering
 from needbench.envs.errors import ConfigError
 from needbench.envs.tasks.forage import (
     FOOD,
@@ -455,11 +456,20 @@ def test_text_and_image_frames():
         core.state["clock"][0] = hour
         frames[hour] = env.render()
     picture = frames[15]
-    assert picture.dtype == np.uint8 and picture.shape == (9 * 8 + 8 * 3, 9 * 8, 3)
+    assert picture.dtype == np.uint8 and min(picture.shape[:2]) >= rendering.MIN_SIDE
+    world = core.world.image(core.state, 0)
+    assert world.shape == (9 * 8, 9 * 8, 3)
+    row, column = core.state["position"][0] * 8
+    assert np.all(world[row + 3, column + 3] == rendering.AGENT_COLOUR)
+    core.state["clock"][0] = 45
+    midnight = core.world.image(core.state, 0)
+    core.state["clock"][0] = 15
+    noon = core.world.image(core.state, 0)
     sand = np.argwhere(core.state["terrain"][0] == SAND)
     sand = [tuple(c) for c in sand if tuple(c) != tuple(core.state["position"][0])][0]
     pixel = (sand[0] * 8 + 1, sand[1] * 8 + 1)
-    assert frames[15][pixel].astype(int).sum() > frames[45][pixel].astype(int).sum()
+    assert noon[pixel].astype(int).sum() > midnight[pixel].astype(int).sum()
+    assert not np.array_equal(frames[15], frames[45])
 
 
 # --- bad input -----------------------------------------------------------------------

@@ -303,3 +303,39 @@ def test_schema_version_is_checked(tmp_path):
         connection.execute("UPDATE schema_version SET version = 99")
     with pytest.raises(ConfigError, match="schema_version"):
         Store(path)
+
+
+def test_agent_files_are_kept_relative_to_the_store(tmp_path):
+    folder = tmp_path / "run"
+    inside = _result(JOBS[0])
+    inside.agent_file = str(folder / "agents" / "a.npz")
+    outside = _result(JOBS[1])
+    outside.agent_file = str(tmp_path / "elsewhere" / "b.npz")
+    with Store(folder / "results.sqlite3") as store:
+        store.record_job(inside)
+        store.record_job(outside)
+        store.record_job(_result(JOBS[2]))
+        stored = {run["hash"]: run["agent_file"] for run in store.runs()}
+        assert stored[JOBS[0].hash] == "agents/a.npz"  # the run folder can move whole
+        assert stored[JOBS[1].hash] == str((tmp_path / "elsewhere" / "b.npz").resolve())
+        assert store.agent_file(JOBS[0].hash) == folder / "agents" / "a.npz"
+        assert store.agent_file(JOBS[2].hash) is None
+        with pytest.raises(KeyError):
+            store.agent_file("no-such-run")
+        store.export_csv(folder / "runs.csv")
+    assert "agents/a.npz" in (folder / "runs.csv").read_text()
+
+
+def test_a_version_1_store_gains_the_agent_file_column(tmp_path):
+    path = tmp_path / "results.sqlite3"
+    with Store(path) as store:
+        store.record_job(_result(JOBS[0]))
+    with sqlite3.connect(path) as connection:  # the layout of version 1
+        connection.execute("ALTER TABLE runs DROP COLUMN agent_file")
+        connection.execute("UPDATE schema_version SET version = 1")
+    with Store(path) as store:
+        assert [run["agent_file"] for run in store.runs()] == [None]
+        assert store.agent_file(JOBS[0].hash) is None
+        assert store.record_job(_result(JOBS[1]))
+    with sqlite3.connect(path) as connection:
+        assert connection.execute("SELECT version FROM schema_version").fetchall() == [(2,)]

@@ -146,6 +146,7 @@ def test_render_modes(task_id):
     env.reset(seed=0)
     image = env.render()
     assert image.dtype == np.uint8 and image.ndim == 3 and image.shape[2] == 3
+    assert min(image.shape[:2]) >= 256  # readable: issue 10's floor on the short side
     vec = gym.make_vec(task_id, num_envs=2, vectorization_mode="vector_entry_point",
                        render_mode="rgb_array")
     vec.reset(seed=0)

@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 from gymnasium import spaces
 
+from needbench.envs import rendering
 from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     ACTIVITY,
@@ -58,12 +59,9 @@ SOURCE_FIELDS = {
 }
 MAX_SOURCES_PER_NEED = 16
 
-#: Picture colours (RGB) of the first needs' sources; further needs are grey.
-SOURCE_COLOURS = np.array([[230, 140, 40], [60, 120, 230], [220, 60, 60], [150, 80, 200],
-                           [60, 180, 160]], np.float64)
-OTHER_COLOUR = np.array([140, 140, 140], np.float64)
 GROUND_COLOUR = np.array([214, 200, 160], np.float64)
-IMAGE_SIZE = 64
+#: Side of the picture, pixels (sources take their need's colour, rendering.need_colour).
+IMAGE_SIZE = 256
 MAP_WIDTH, MAP_HEIGHT = 32, 16
 
 
@@ -397,23 +395,29 @@ class ArenaWorld(World):
         return "\n".join(picture + [f"@ agent: ({x:.2f}, {y:.2f})"] + lines)
 
     def image(self, state, index):
+        """(IMAGE_SIZE, IMAGE_SIZE, 3) uint8: sand tinted by every source in its need's
+        colour as strongly as it is rich there, and the agent in the agent colour."""
         centres = (np.arange(IMAGE_SIZE) + 0.5) / IMAGE_SIZE
         xs, ys = np.meshgrid(centres, centres[::-1])
         pixels = np.stack([xs.ravel(), ys.ravel()], axis=1)
         # Each pixel is tinted by the richest source of each need, so gradients show.
         richness = self.richness(pixels, state["sources"][index])
         picture = np.broadcast_to(GROUND_COLOUR, (pixels.shape[0], 3)).copy()
+        needs = self.physiology.needs
         for s in range(self.num_sources):
-            need = self.source_need[s]
-            colour = SOURCE_COLOURS[need] if need < len(SOURCE_COLOURS) else OTHER_COLOUR
+            need = int(self.source_need[s])
+            colour = rendering.need_colour(needs[need].name, need).astype(np.float64)
             r = richness[:, s:s + 1]
             picture = picture * (1.0 - r) + colour * r
         picture = picture.reshape(IMAGE_SIZE, IMAGE_SIZE, 3)
         x, y = state["position"][index]
         column = min(int(x * IMAGE_SIZE), IMAGE_SIZE - 1)
         row = IMAGE_SIZE - 1 - min(int(y * IMAGE_SIZE), IMAGE_SIZE - 1)
-        picture[max(row - 2, 0):row + 3, max(column - 2, 0):column + 3] = 20.0
-        picture[max(row - 1, 0):row + 2, max(column - 1, 0):column + 2] = 250.0
+        mark = max(IMAGE_SIZE // 48, 2)
+        picture[max(row - mark - 2, 0):row + mark + 3,
+                max(column - mark - 2, 0):column + mark + 3] = rendering.AGENT_OUTLINE
+        picture[max(row - mark, 0):row + mark + 1,
+                max(column - mark, 0):column + mark + 1] = rendering.AGENT_COLOUR
         return picture.astype(np.uint8)
 
 

@@ -29,6 +29,7 @@ from typing import Any
 import numpy as np
 from gymnasium import spaces
 
+from needbench.envs import rendering
 from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     ACTIVITY,
@@ -723,19 +724,25 @@ class ForageWorld(World):
         return "\n".join([header] + ["".join(line) for line in grid])
 
     def image(self, state, index):
-        """(8 H, 8 W, 3) uint8: walls, sand tinted by the hour, shade, water, food
-        shaded by stock (brown empty to green full) and the agent in red."""
+        """(8 H, 8 W, 3) uint8: walls, sand tinted by the hour, shade, water in the water
+        colour, food shaded by stock (dull brown empty to the energy colour full) and the
+        agent in the agent colour (``needbench.envs.rendering``)."""
         terrain, stock = state["terrain"][index], state["stock"][index]
         light = 0.5 * (1.0 + np.sin(self.phase(state["clock"][index])))  # 0 midnight, 1 noon
         sand = np.array([45.0, 50.0, 90.0]) + light * np.array([190.0, 160.0, 50.0])
-        palette = np.array([sand, [40, 100, 50], [110, 90, 70], [50, 110, 220], [0, 0, 0]])
+        water = rendering.need_colour("water", 1).astype(np.float64)
+        palette = np.array([sand, [40, 100, 50], [110, 90, 70], water, [0, 0, 0]])
         picture = palette[terrain]
         fill = (stock / self.food_capacity)[:, :, None]
-        food = np.array([130.0, 90.0, 40.0]) + fill * np.array([-90.0, 110.0, 0.0])
+        empty = np.array([95.0, 75.0, 55.0])
+        food = empty + fill * (rendering.need_colour("energy", 0) - empty)
         picture = np.where((terrain == FOOD)[:, :, None], food, picture)
         picture = np.repeat(np.repeat(picture, CELL_PIXELS, axis=0), CELL_PIXELS, axis=1)
         row, column = state["position"][index] * CELL_PIXELS
-        picture[row + 2:row + CELL_PIXELS - 2, column + 2:column + CELL_PIXELS - 2] = (220, 40, 40)
+        picture[row + 1:row + CELL_PIXELS - 1, column + 1:column + CELL_PIXELS - 1] = \
+            rendering.AGENT_OUTLINE
+        picture[row + 2:row + CELL_PIXELS - 2, column + 2:column + CELL_PIXELS - 2] = \
+            rendering.AGENT_COLOUR
         return picture.astype(np.uint8)
 
 

@@ -7,6 +7,7 @@ from typing import Any
 import numpy as np
 from gymnasium import spaces
 
+from needbench.envs import rendering
 from needbench.envs.compiled import inline_kernel, kernel
 from needbench.envs.engine import (
     AMBIENT,
@@ -219,17 +220,64 @@ class ForewarnWorld(World):
         return {"cue": np.zeros(batch, np.bool_), "disturbance": np.zeros(batch, np.bool_),
                 "prepared": np.zeros(batch, np.bool_)}
 
-    def text(self, state, index):
+    def weather(self, state, index) -> tuple[str, str]:
+        """(phase, words) of copy ``index``: phase ``calm``, ``warned`` (the horn has
+        sounded, the squall is still to come) or ``squall``."""
         since = int(state["since_cue"][index])
         if since == IDLE:
-            weather = "calm"
-        elif since < self.warning_delay:
-            weather = (f"horn sounded {since} steps ago; squall in "
-                       f"{self.warning_delay - since} steps")
-        else:
-            weather = f"squall blowing, {self.event_length - since} steps left"
+            return "calm", "calm"
+        if since < self.warning_delay:
+            return "warned", (f"horn sounded {since} steps ago; squall in "
+                              f"{self.warning_delay - since} steps")
+        return "squall", f"squall blowing, {self.event_length - since} steps left"
+
+    def text(self, state, index):
         coat = "worn" if state["coat"][index] else "off"
-        return f"weather: {weather}\noilskin: {coat}"
+        return f"weather: {self.weather(state, index)[1]}\noilskin: {coat}"
+
+    def image(self, state, index):
+        """(256, 432, 3) uint8: the moor under the sky of the phase (clear when calm,
+        darkening once the horn has sounded, grey with sleet in the squall), the horn on
+        its post with sound waves while its warning runs, and the shepherd in the agent
+        colour, in a yellow oilskin when it is worn; the words of :meth:`weather` below."""
+        phase, words = self.weather(state, index)
+        height, width, horizon = 256, 432, 180
+        picture = np.empty((height, width, 3), np.float64)
+        sky = {"calm": (150, 195, 235), "warned": (115, 135, 165), "squall": (78, 84, 100)}
+        picture[:horizon] = sky[phase]
+        picture[horizon:] = (92, 108, 62)
+        rows, columns = np.mgrid[0:height, 0:width]
+        if phase == "squall":  # slanted sleet over the sky and moor
+            sleet = ((columns + rows // 2) % 18 == 0) & (rows % 7 < 4)
+            picture[sleet] = (225, 230, 240)
+        # The horn: a brass cone on a post, its bell to the right.
+        picture[96:horizon, 40:46] = (90, 70, 50)
+        cone = (columns >= 40) & (columns <= 104) & \
+            (np.abs(rows - 92) <= 3 + (columns - 40) * 0.22)
+        picture[cone] = (205, 165, 60)
+        if phase == "warned":
+            distance = np.hypot(rows - 92, columns - 104)
+            waves = (columns > 106) & (np.abs(rows - 92) < (columns - 100)) & \
+                np.isin(np.round(distance).astype(int) % 14, (0, 1)) & (distance < 60)
+            picture[waves] = (250, 235, 140)
+        # The shepherd.
+        centre = 372
+        coat = bool(state["coat"][index])
+        head = np.hypot(rows - 108, columns - centre)
+        body = (rows >= 124) & (rows < horizon + 6) & (np.abs(columns - centre) <= 18)
+        outline = (rows >= 121) & (rows < horizon + 9) & (np.abs(columns - centre) <= 21)
+        picture[outline | (head <= 15)] = rendering.AGENT_OUTLINE
+        picture[body | (head <= 12)] = rendering.AGENT_COLOUR
+        if coat:
+            oilskin = (245, 205, 40)
+            picture[body & (np.abs(columns - centre) >= 3)] = oilskin
+            hood = (head <= 14) & (head > 9) & (rows <= 112)
+            picture[hood] = oilskin
+        picture = picture.astype(np.uint8)
+        lines = words.split("; ") + ["oilskin: " + ("worn" if coat else "off")]
+        for i, line in enumerate(lines):
+            rendering.draw_text(picture, line, horizon + 8 + 20 * i, 8)
+        return picture
 
 
 class ForewarnEnv(NeedEnv):
