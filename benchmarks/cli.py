@@ -580,8 +580,12 @@ def command_compare(args: argparse.Namespace) -> int:
 
     first, second = args.agents
     with _open_store(args.location) as store:
-        comparison = compare(store, first, second, args.metric)
-        agents = sorted({run["agent"] for run in store.runs(status="done")})
+        if args.reference is None:
+            comparison = compare(store, first, second, args.metric)
+        else:
+            with _open_store(args.reference) as reference:
+                comparison = compare(store, first, second, args.metric, reference)
+        agents = sorted({run["agent"] for run in store.runs(status="done")} | {second})
     if args.json:
         print(comparison.to_json())
     else:
@@ -786,6 +790,9 @@ def build_parser() -> argparse.ArgumentParser:
     comparing.add_argument("--metric", default="return",
                            choices=tuple(COMPARABLE),
                            help="the metric compared (default: return)")
+    comparing.add_argument("--reference", metavar="RUN", default=None,
+                           help="another run folder or results store: B's runs come from it "
+                           "(only tasks evaluated under the same protocol are compared)")
     comparing.add_argument("--out", metavar="DIR", default=None,
                            help="folder of comparison.json and comparison.png (default: "
                            "DIR/compare-A-B-METRIC)")

@@ -115,8 +115,27 @@ def _scores(series, metric: str) -> np.ndarray:
                      if metric in run and math.isfinite(float(run[metric]))])
 
 
-def compare(store, first: str, second: str, metric: str = "return") -> Comparison:
-    """P(first > second) and IQM(first) - IQM(second) per task and over all shared tasks."""
+def protocols(store) -> dict[str, set[str]]:
+    """{task id: the evaluation protocols of its done runs}, each protocol the task's
+    keywords, the evaluation episodes and the scoring discount as canonical JSON."""
+    found: dict[str, set[str]] = {}
+    for run in store.runs(status="done"):
+        config = run["config"]
+        protocol = json.dumps({"task": config["task"], "eval_episodes": config["eval_episodes"],
+                               "gamma": config["gamma"]}, sort_keys=True)
+        found.setdefault(config["task"]["id"], set()).add(protocol)
+    return found
+
+
+def compare(store, first: str, second: str, metric: str = "return",
+            reference=None) -> Comparison:
+    """P(first > second) and IQM(first) - IQM(second) per task and over all shared tasks.
+
+    With ``reference`` (another results store), ``second``'s runs come from it;
+    a task is compared only when both stores evaluated it under the same
+    protocol (task keywords, evaluation episodes, scoring discount), and a task
+    evaluated under different protocols is refused with a ConfigError.
+    """
     from needbench.benchmarks.stats import probability_of_improvement_ci
 
     if metric not in COMPARABLE:
@@ -127,12 +146,27 @@ def compare(store, first: str, second: str, metric: str = "return") -> Compariso
     sign = 1.0 if higher else -1.0
     pairs = []
     tasks = task_results(store)
+    others = {task.task_id: task for task in task_results(reference)} if reference else {}
+    if reference is not None:
+        ours, theirs = protocols(store), protocols(reference)
+        for task_id in sorted(set(ours) & set(theirs)):
+            if ours[task_id] != theirs[task_id]:
+                raise ConfigError(f"reference.{task_id}", sorted(theirs[task_id]),
+                                  "the protocol of this run's evaluations: "
+                                  + "; ".join(sorted(ours[task_id])))
     for task in tasks:
         by_label = {}
+        second_series = others[task.task_id].series if reference else task.series
+        if reference is not None and task.task_id not in others:
+            continue
         for series in task.series:
-            if series.agent in (first, second):
+            if series.agent == first:
                 by_label.setdefault(series.label.removeprefix(series.agent).strip(),
-                                    {})[series.agent] = series
+                                    {})[first] = series
+        for series in second_series:
+            if series.agent == second:
+                by_label.setdefault(series.label.removeprefix(series.agent).strip(),
+                                    {})[second] = series
         for sweep, both in sorted(by_label.items()):
             if len(both) < 2:
                 continue
@@ -140,10 +174,13 @@ def compare(store, first: str, second: str, metric: str = "return") -> Compariso
             if x.size and y.size:
                 pairs.append((f"{task.name} {sweep}".strip(), x, y))
     agents_seen = {s.agent for task in tasks for s in task.series}
-    for name in (first, second):
-        if name not in agents_seen:
-            raise ConfigError("agents", name, "an agent with runs in this store: "
-                              + ", ".join(sorted(agents_seen)))
+    reference_seen = {s.agent for task in others.values() for s in task.series}
+    for name, seen, where in ((first, agents_seen, "this store"),
+                              (second, reference_seen if reference else agents_seen,
+                               "the reference" if reference else "this store")):
+        if name not in seen:
+            raise ConfigError("agents", name, f"an agent with runs in {where}: "
+                              + ", ".join(sorted(seen)))
     if not pairs:
         raise ConfigError("agents", [first, second],
                           f"two agents that both have runs with {metric!r} on some task")

@@ -291,6 +291,39 @@ def test_compare_command_writes_table_json_and_figure(run_folder, capsys, tmp_pa
     assert main(["compare", str(run_folder), "--agents", "random", "nobody"]) == 2
 
 
+def test_compare_against_a_reference_store(run_folder, tmp_path):
+    # The same store as its own reference gives the same comparison as within it.
+    with Store(run_folder / "results.sqlite3") as store, \
+            Store(run_folder / "results.sqlite3") as reference:
+        within = compare(store, "tabular-q", "random", "time_in_band")
+        across = compare(store, "tabular-q", "random", "time_in_band", reference)
+    assert [(r.task, r.probability, r.difference) for r in across.rows] == \
+        [(r.task, r.probability, r.difference) for r in within.rows]
+    # A reference evaluated under another protocol is refused.
+    other = tmp_path / "other"
+    other.mkdir()
+    suite_file = other / "suite.toml"
+    suite_file.write_text("""
+[suite]
+name = "other protocol"
+seeds = [0, 1, 2]
+eval_episodes = 3
+
+[[task]]
+id = "needbench/Menu-v0"
+[task.kwargs]
+max_steps = 40
+
+[[agent]]
+name = "random"
+total_steps = 0
+""")
+    with Store(other / "results.sqlite3") as reference:
+        run_suite(parse_suite(suite_file), reference, workers=1)
+    assert main(["compare", str(run_folder), "--agents", "tabular-q", "random",
+                 "--reference", str(other)]) == 2
+
+
 def test_report_command_and_bad_input(run_folder, capsys):
     out = run_folder / "from-cli" / "page.html"
     assert main(["report", str(run_folder), "--out", str(out)]) == 0
