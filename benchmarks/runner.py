@@ -188,6 +188,9 @@ def run_job(config: dict[str, Any], job_hash: str,
         folder = None
         if settings.tensorboard_root is not None:
             folder = Path(settings.tensorboard_root) / run_folder_name(job.describe(), job_hash)
+            # A rerun (after a kill or a failure) replaces the folder: no partial
+            # event files of an earlier attempt are left beside the new ones.
+            shutil.rmtree(folder, ignore_errors=True)
         logger = RunLogger(folder, discount=job.gamma)
         need_names = list(env.unwrapped.core.need_names)
         try:
