@@ -339,9 +339,12 @@ class Store:
             self._create_schema()
         except sqlite3.DatabaseError as error:
             self._connection.close()
-            raise ConfigError("results", str(self.path),
-                              f"a needbench results store, a SQLite database ({error})"
-                              ) from error
+            # OperationalError: the file could not be opened or written (a
+            # read-only folder, a full disk); any other: the file is not SQLite.
+            allowed = ("a SQLite file this user can open and write" if isinstance(
+                error, sqlite3.OperationalError) else "a needbench results store, a SQLite "
+                "database")
+            raise ConfigError("results", str(self.path), f"{allowed} ({error})") from error
         except BaseException:
             self._connection.close()
             raise
