@@ -391,21 +391,31 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
         started_jobs.close()
         remaining = []
         lost = [job for job in lost if job.hash not in timed_out]
-        # A round broken by a timeout charges no one else; any other round that
-        # loses jobs charges at least one, so the loop always ends.
-        charged = [job for job in lost if job.hash in started and job.hash not in finished]
-        for job in [] if timed_out else (charged or lost):
+        exit_codes = {job.hash: _exit_code(processes, started, job.hash) for job in lost}
+        running = [job for job in lost if job.hash in started and job.hash not in finished]
+        # The pool stops its other workers with SIGTERM once one dies: a job whose
+        # worker ended otherwise is the culprit. Failing that, every job that was
+        # running is charged. A round broken by a timeout charges no one else;
+        # any other round that loses jobs charges at least one, so the loop ends.
+        culprits = [job for job in running if exit_codes[job.hash] not in (None, -signal.SIGTERM)]
+        for job in [] if timed_out else (culprits or running or lost):
             deaths[job.hash] += 1
         for job in lost:
             if deaths[job.hash] > max_retries:
-                worker = processes.get(started.get(job.hash, (None, 0.0))[0])
-                how = _death_text(worker.exitcode if worker is not None else None)
+                how = _death_text(exit_codes[job.hash])
                 on_result(failed_result(
                     job, f"the worker process running this job died {deaths[job.hash]} times "
                     f"(max_retries = {max_retries}), the last time because {how}; it may "
                     "have run out of memory or crashed in native code", submitted, settings))
             else:
                 remaining.append(job)
+
+
+def _exit_code(processes: Mapping[int, Any], started: Mapping[str, tuple[int, float]],
+               job_hash: str) -> int | None:
+    """The exit code of the worker that last ran a job (None: unknown, or still running)."""
+    worker = processes.get(started[job_hash][0]) if job_hash in started else None
+    return worker.exitcode if worker is not None else None
 
 
 def _overdue(futures: Mapping[Any, Job], waiting: set[Any],

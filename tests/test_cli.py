@@ -305,6 +305,20 @@ def test_bad_input_exits_with_2_and_no_traceback(tmp_path, capsys, monkeypatch):
     assert "nobody" in error_of(["watch", "Menu", "--agent", "nobody"])
     assert "results" in error_of(["results", str(tmp_path / "empty")])
     assert not (tmp_path / "o" / "results.sqlite3").exists()
+    # Issue 11, items 1, 2, 3 and 11: each was a traceback and exit 1, or no error at all.
+    not_sqlite = _write(tmp_path, "x.sqlite3", "hello\n")
+    assert "a needbench results store" in error_of(["results", str(not_sqlite)])
+    assert f"--out = '{not_sqlite}'" in error_of(["run", str(good), "--out", str(not_sqlite)])
+    huge_seed = _write(tmp_path, "seed.toml", SUITE.replace("seeds = [0, 1, 2, 3]",
+                                                            "seeds = [9223372036854775808]"))
+    err = error_of(["run", str(huge_seed), "--out", str(tmp_path / "s")])
+    assert "suite.seeds[0] = 9223372036854775808" in err and "[0, 4294967295]" in err
+    endless = _write(tmp_path, "endless.toml", SUITE.replace("total_steps = 800",
+                                                             "total_steps = 9223372036854775807"))
+    err = error_of(["run", str(endless), "--out", str(tmp_path / "e")])
+    assert "agent[1].total_steps" in err and "max_total_steps" in err
+    assert "--job-timeout" in error_of(["run", str(good), "--job-timeout", "0"])
+    assert not (tmp_path / "s").exists() and not (tmp_path / "e").exists()
 
 
 def test_version_and_help(capsys):
