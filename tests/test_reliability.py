@@ -362,6 +362,8 @@ def test_a_driver_killed_at_several_moments_resumes_with_nothing_lost_or_doubled
             time.sleep(0.1)
     assert kills == len(KILL_POINTS), "the run finished before every kill; lengthen its jobs"
     assert 1 <= _count_done(store_path) < KILL_JOBS
+    with Store(store_path) as store:
+        before = {run["hash"]: run["started"] for run in store.runs()}
 
     assert main(["run", str(suite), "--out", str(out), "--workers", "1", "--quiet"]) == 0
 
@@ -373,6 +375,9 @@ def test_a_driver_killed_at_several_moments_resumes_with_nothing_lost_or_doubled
         assert all(status == "done" for _, status in rows)
         assert connection.execute("SELECT count(*) FROM episodes").fetchone()[0] == \
             KILL_JOBS * 4
+    with Store(store_path) as store:
+        after = {run["hash"]: run["started"] for run in store.runs()}
+    assert all(after[h] == started for h, started in before.items())  # not run twice
     # Every metric of every episode equals the uninterrupted run's: no row lost or changed.
     assert _metrics(store_path) == _metrics(reference / "results.sqlite3")
     # Issue 11, item 10: one event folder per job, each with one event file.
