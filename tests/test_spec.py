@@ -477,3 +477,17 @@ def test_the_cli_exits_2_naming_the_file_before_making_a_folder(tmp_path, capsys
     err = capsys.readouterr().err
     assert f"{path}: task[0].kwargs.max_step = 40" in err and "max_steps" in err
     assert not (tmp_path / "out").exists()
+
+
+def test_max_total_steps_lets_a_suite_ask_for_more():
+    text = BASE.replace("total_steps = 10", "total_steps = 3000000000")
+    with pytest.raises(ConfigError, match="max_total_steps"):
+        spec.parse_suite(text)
+    suite = spec.parse_suite(text.replace("seeds = [0]",
+                                          "seeds = [0]\nmax_total_steps = 4000000000"))
+    assert suite.max_total_steps == 4_000_000_000 and suite.agents[0].total_steps == 3_000_000_000
+    assert spec.parse_suite(spec.to_toml(suite)) == suite
+    # The bound is not part of any job: raising it keeps every hash.
+    lowered = spec.parse_suite(BASE.replace("seeds = [0]", "seeds = [0]\nmax_total_steps = 10"))
+    assert [job.hash for job in spec.expand(lowered)] == \
+        [job.hash for job in spec.expand(spec.parse_suite(BASE))]
