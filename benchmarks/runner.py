@@ -24,8 +24,10 @@ convention); evaluation episodes use seeds of their own
 suite's scoring discount (``gamma``) to the agent, so its learning curves and
 the stored metrics share one definition (:mod:`needbench.agents.curves`).
 
-:func:`run_suite` is the driver. It skips jobs whose hash the store already
-holds as done (so a rerun resumes an interrupted sweep), runs the rest with
+:func:`run_suite` is the driver. It takes the store's lock
+(:mod:`needbench.benchmarks.lock`: one run per store), skips jobs whose hash
+the store already holds as done (so a rerun resumes an interrupted sweep; with
+``retry_failed`` it runs only the jobs held as failed), runs the rest with
 the chosen backend, and writes each result the moment it arrives, one
 transaction per job: the driver is the store's only writer.
 
@@ -34,7 +36,11 @@ Backends:
 * ``local`` (default): ``concurrent.futures.ProcessPoolExecutor`` with the
   ``spawn`` start method, one worker per CPU unless told otherwise, each
   limited to one BLAS/torch thread. If a worker process dies, the jobs it
-  took down are run again in a fresh pool, at most ``max_retries`` times each.
+  took down are run again in a fresh pool, at most ``max_retries`` times each,
+  then recorded as failed with the worker's exit code or signal. A job over
+  ``job_timeout`` seconds has its worker killed and is recorded as failed.
+  Each worker checks twice a second that its driver is alive and exits when
+  it is not, so a driver killed with SIGKILL leaves no worker running.
 * ``ray``: the same job function as Ray remote tasks (``num_cpus=1`` each,
   ``max_retries`` for lost workers), on the cluster at ``address`` or on a
   local instance with ``num_cpus = workers``; a Ray session opened elsewhere
