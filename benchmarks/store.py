@@ -68,22 +68,26 @@ _EPISODE_COLUMNS = (
     ("length", "length", int),
 )
 
-# What version 2 added; run as well on a version-1 file to bring it up to date.
-_HISTORY_SCHEMA = (
-    """CREATE TABLE IF NOT EXISTS failed_attempts (
-        hash TEXT NOT NULL,
+# The columns runs and failed_attempts share: a job's identity, then how an attempt went.
+_IDENTITY_COLUMNS = """
         suite TEXT NOT NULL,
         task_id TEXT NOT NULL,
         agent TEXT NOT NULL,
         seed INTEGER NOT NULL,
         sweep TEXT NOT NULL,
-        config TEXT NOT NULL,
+        config TEXT NOT NULL,"""
+_ATTEMPT_COLUMNS = """
         error TEXT,
         started TEXT NOT NULL,
         finished TEXT NOT NULL,
         wall_seconds REAL NOT NULL,
         package_version TEXT NOT NULL,
-        git_revision TEXT,
+        git_revision TEXT,"""
+
+# What version 2 added; run as well on a version-1 file to bring it up to date.
+_HISTORY_SCHEMA = (
+    f"""CREATE TABLE IF NOT EXISTS failed_attempts (
+        hash TEXT NOT NULL,{_IDENTITY_COLUMNS}{_ATTEMPT_COLUMNS}
         environment TEXT NOT NULL,
         superseded_by TEXT NOT NULL,
         superseded_at TEXT NOT NULL
@@ -97,22 +101,10 @@ _HISTORY_COLUMNS = ("hash, suite, task_id, agent, seed, sweep, config, error, st
 
 _SCHEMA = (
     "CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL)",
-    """CREATE TABLE IF NOT EXISTS runs (
-        hash TEXT PRIMARY KEY,
-        suite TEXT NOT NULL,
-        task_id TEXT NOT NULL,
-        agent TEXT NOT NULL,
-        seed INTEGER NOT NULL,
-        sweep TEXT NOT NULL,
-        config TEXT NOT NULL,
-        status TEXT NOT NULL CHECK (status IN ('done', 'failed')),
-        error TEXT,
-        started TEXT NOT NULL,
-        finished TEXT NOT NULL,
-        wall_seconds REAL NOT NULL,
-        package_version TEXT NOT NULL,
-        git_revision TEXT,
-        environment TEXT NOT NULL DEFAULT '{}'
+    f"""CREATE TABLE IF NOT EXISTS runs (
+        hash TEXT PRIMARY KEY,{_IDENTITY_COLUMNS}
+        status TEXT NOT NULL CHECK (status IN ('done', 'failed')),{_ATTEMPT_COLUMNS}
+        environment TEXT NOT NULL DEFAULT '{{}}'
     )""",
     "CREATE INDEX IF NOT EXISTS runs_by_cell ON runs (suite, task_id, agent, status)",
     *_HISTORY_SCHEMA,

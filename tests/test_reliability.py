@@ -175,21 +175,8 @@ def test_workers_end_with_their_killed_driver(faulty_jobs, tmp_path, monkeypatch
 # The results folder
 # ----------------------------------------------------------------------------
 
-SMALL_SUITE = """
-[suite]
-name = "folder-test"
-seeds = [0]
-eval_episodes = 1
-
-[[task]]
-id = "needbench/Menu-v0"
-[task.kwargs]
-max_steps = 10
-
-[[agent]]
-name = "random"
-total_steps = 0
-"""
+SMALL_SUITE = FAULT_SUITE.replace("seeds = [0, 1, 2]", "seeds = [0]").replace(
+    'name = "faulty"', 'name = "random"')
 
 HOLDER = """
 import sys, time
