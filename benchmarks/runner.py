@@ -78,11 +78,11 @@ from needbench.agents.base import (
     make_task_vector_env,
 )
 from needbench.benchmarks.evaluate import MODES, evaluate, evaluation_metrics
+from needbench.benchmarks.lock import ResultsLock
 from needbench.benchmarks.metrics import summarise
 from needbench.benchmarks.spec import Job, Suite, expand
 from needbench.benchmarks.store import JobResult, Store
 from needbench.benchmarks.tensorboard import RunLogger, run_folder_name
-from needbench.benchmarks.lock import ResultsLock
 from needbench.envs.errors import ConfigError, check_choice, check_positive
 
 BACKENDS = ("local", "ray")
