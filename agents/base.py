@@ -434,10 +434,15 @@ def as_batch(space: spaces.Space, observations: Any) -> tuple[Any, bool]:
 # --- seeding ------------------------------------------------------------------------
 
 
+#: The largest seed: NumPy's legacy seeding (which Stable-Baselines3 calls) takes < 2**32.
+MAX_SEED = 2**32 - 1
+
+
 def check_seed(path: str, seed: Any) -> int:
-    """A seed is a whole number >= 0."""
-    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ConfigError(path, seed, "a whole number >= 0")
+    """A seed is a whole number in [0, MAX_SEED]."""
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)) \
+            or not 0 <= seed <= MAX_SEED:
+        raise ConfigError(path, seed, f"a whole number in [0, {MAX_SEED}]")
     return int(seed)
 
 

@@ -129,6 +129,18 @@ def _run_folder(location: str) -> Path:
     return path if path.is_dir() else path.parent
 
 
+def _make_folder(option: str, folder: Path) -> None:
+    """Make an output folder, or ConfigError naming the option when it cannot be one."""
+    if folder.exists() and not folder.is_dir():
+        raise ConfigError(option, str(folder), "a folder, new or of an earlier run (a file of "
+                          "that name exists)")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise ConfigError(option, str(folder), "a folder this user can create "
+                          f"({error.strerror or error})") from error
+
+
 def _open_store(location: str):
     """The store in a run's output folder, or a store file itself; never creates one."""
     from needbench.benchmarks.store import Store
@@ -266,6 +278,7 @@ def command_describe(args: argparse.Namespace) -> int:
 
 
 def command_run(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.lock import ResultsLock
     from needbench.benchmarks.runner import (
         RunSettings,
         check_run_options,
@@ -277,9 +290,13 @@ def command_run(args: argparse.Namespace) -> int:
 
     suite = load_suite(args.suite)
     # Every option is checked before the output folder is made.
-    check_run_options(args.workers, args.backend, args.address, args.max_retries)
+    check_run_options(args.workers, args.backend, args.address, args.max_retries,
+                      args.job_timeout)
     out = Path(args.out) if args.out is not None else Path("results") / suite.name
+    _make_folder("--out", out)
     tensorboard = Path(args.tensorboard) if args.tensorboard else out / TENSORBOARD_NAME
+    if args.tensorboard:
+        _make_folder("--tensorboard", tensorboard)
     if writer_backend() is None:
         print(f"needbench: {NO_WRITER_MESSAGE}", file=sys.stderr)
         tensorboard = None
@@ -287,12 +304,15 @@ def command_run(args: argparse.Namespace) -> int:
     settings = RunSettings(tensorboard_root=None if tensorboard is None else str(tensorboard),
                            keep_traces=args.traces, git_revision=git_revision(),
                            agents_root=None if agents is None else str(agents))
-    with Store(out / STORE_NAME) as store:
+    # The lock first: a read-only or full folder, or another run on it, stops
+    # us before the store is opened or any job starts.
+    with ResultsLock(out / STORE_NAME), Store(out / STORE_NAME) as store:
         summary = run_suite(suite, store, workers=args.workers, backend=args.backend,
                             address=args.address, settings=settings,
                             max_retries=args.max_retries, progress=not args.quiet,
                             progress_every=None if sys.stdout.isatty()
-                            else PROGRESS_LINE_SECONDS)
+                            else PROGRESS_LINE_SECONDS, job_timeout=args.job_timeout,
+                            retry_failed=args.retry_failed)
         hashes = [job.hash for job in summary.jobs]
         failed = [run for run in store.runs(suite=suite.name, status="failed")
                   if run["hash"] in set(hashes)]
@@ -305,6 +325,9 @@ def command_run(args: argparse.Namespace) -> int:
             if summary.skipped:
                 print(f"{len(summary.skipped)} jobs already done in {out / STORE_NAME} were "
                       "not run again (another --out starts afresh)")
+            if summary.left:
+                print(f"{len(summary.left)} jobs never run were left out (--retry-failed "
+                      "reruns only failed jobs; a rerun without it runs them)")
             _print_not_applicable(summary, args.verbose)
         print(format_table(result_cells(store, hashes), table_width(args.wide)))
     for run in failed:
@@ -647,6 +670,17 @@ _positive = _whole_number(1)
 _non_negative = _whole_number(0)
 
 
+def _positive_seconds(text: str) -> float:
+    """An argparse type: a finite number of seconds > 0."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not math.isfinite(value) or value <= 0:
+        raise argparse.ArgumentTypeError(f"{text} is not a finite number > 0")
+    return value
+
+
 def _add_location(parser: argparse.ArgumentParser) -> None:
     """The DIR argument of the verbs that read a results store."""
     parser.add_argument("location", metavar="DIR",
@@ -705,6 +739,12 @@ def build_parser() -> argparse.ArgumentParser:
                      "TASK --agent-file FILE`")
     run.add_argument("--max-retries", metavar="N", type=_non_negative, default=2,
                      help="reruns of a job whose worker process died or was lost (default: 2)")
+    run.add_argument("--job-timeout", metavar="SECONDS", type=_positive_seconds, default=None,
+                     help="stop a job running longer than this and record it as failed "
+                     "(local backend; default: no limit)")
+    run.add_argument("--retry-failed", action="store_true",
+                     help="run only the jobs the store holds as failed (jobs never run are "
+                     "left for a plain rerun)")
     run.add_argument("--quiet", action="store_true",
                      help="no progress and no summary lines, only the results table (off a "
                      f"terminal, progress is a plain line every {PROGRESS_LINE_SECONDS:g} s)")

@@ -24,8 +24,10 @@ convention); evaluation episodes use seeds of their own
 suite's scoring discount (``gamma``) to the agent, so its learning curves and
 the stored metrics share one definition (:mod:`needbench.agents.curves`).
 
-:func:`run_suite` is the driver. It skips jobs whose hash the store already
-holds as done (so a rerun resumes an interrupted sweep), runs the rest with
+:func:`run_suite` is the driver. It takes the store's lock
+(:mod:`needbench.benchmarks.lock`: one run per store), skips jobs whose hash
+the store already holds as done (so a rerun resumes an interrupted sweep; with
+``retry_failed`` it runs only the jobs held as failed), runs the rest with
 the chosen backend, and writes each result the moment it arrives, one
 transaction per job: the driver is the store's only writer.
 
@@ -34,7 +36,11 @@ Backends:
 * ``local`` (default): ``concurrent.futures.ProcessPoolExecutor`` with the
   ``spawn`` start method, one worker per CPU unless told otherwise, each
   limited to one BLAS/torch thread. If a worker process dies, the jobs it
-  took down are run again in a fresh pool, at most ``max_retries`` times each.
+  took down are run again in a fresh pool, at most ``max_retries`` times each,
+  then recorded as failed with the worker's exit code or signal. A job over
+  ``job_timeout`` seconds has its worker killed and is recorded as failed.
+  Each worker checks twice a second that its driver is alive and exits when
+  it is not, so a driver killed with SIGKILL leaves no worker running.
 * ``ray``: the same job function as Ray remote tasks (``num_cpus=1`` each,
   ``max_retries`` for lost workers), on the cluster at ``address`` or on a
   local instance with ``num_cpus = workers``; a Ray session opened elsewhere
@@ -50,12 +56,14 @@ import math
 import multiprocessing
 import os
 import shutil
+import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 import traceback
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from contextlib import contextmanager
@@ -70,11 +78,12 @@ from needbench.agents.base import (
     make_task_vector_env,
 )
 from needbench.benchmarks.evaluate import MODES, evaluate, evaluation_metrics
+from needbench.benchmarks.lock import ResultsLock
 from needbench.benchmarks.metrics import summarise
 from needbench.benchmarks.spec import Job, Suite, expand
 from needbench.benchmarks.store import JobResult, Store
 from needbench.benchmarks.tensorboard import RunLogger, run_folder_name
-from needbench.envs.errors import ConfigError, check_choice
+from needbench.envs.errors import ConfigError, check_choice, check_positive
 
 BACKENDS = ("local", "ray")
 
@@ -195,6 +204,9 @@ def run_job(config: dict[str, Any], job_hash: str,
         folder = None
         if settings.tensorboard_root is not None:
             folder = Path(settings.tensorboard_root) / run_folder_name(job.describe(), job_hash)
+            # A rerun (after a kill or a failure) replaces the folder: no partial
+            # event files of an earlier attempt are left beside the new ones.
+            shutil.rmtree(folder, ignore_errors=True)
         logger = RunLogger(folder, discount=job.gamma)
         need_names = list(env.unwrapped.core.need_names)
         try:
@@ -271,45 +283,86 @@ def _single_threaded_children() -> Iterator[None]:
 #: In a pool worker: where the worker says which job it has started (set by the initialiser).
 _started_jobs: Any = None
 
+#: Seconds between a worker's checks that its driver is still alive.
+PARENT_CHECK_SECONDS = 0.5
 
-def _initialise_worker(started_jobs: Any) -> None:
-    """Pool worker initialiser: thread limits, and the queue for job-start notices."""
+
+def _exit_with_parent(parent: int) -> None:
+    """In a worker: end this process as soon as its driver is gone (the worker is reparented).
+
+    A driver killed with SIGKILL cannot stop its workers; without this check
+    they would run their jobs to the end, at full CPU, for no one.
+    """
+    while os.getppid() == parent:
+        time.sleep(PARENT_CHECK_SECONDS)
+    os._exit(1)
+
+
+def _initialise_worker(started_jobs: Any, driver: int) -> None:
+    """Pool worker initialiser: thread limits, the queue for job-start notices, and a
+    thread that ends the worker when its driver dies."""
     global _started_jobs
     _started_jobs = started_jobs
     limit_threads()
+    threading.Thread(target=_exit_with_parent, args=(driver,), daemon=True,
+                     name="needbench-parent-check").start()
 
 
 def _run_reporting_start(job_function: JobFunction, config: dict[str, Any], job_hash: str,
                          settings: RunSettings) -> JobResult | NotApplicable:
-    """Tell the driver that this job has started, then run it (in a pool worker)."""
-    _started_jobs.put(job_hash)
+    """Tell the driver that this job has started, and in which process, then run it."""
+    _started_jobs.put((job_hash, os.getpid()))
     return job_function(config, job_hash, settings)
 
 
-def _drain(queue: Any, into: set[str]) -> None:
+def _drain(queue: Any, into: dict[str, tuple[int, float]]) -> None:
+    """Job-start notices into ``{hash: (worker pid, start time on the driver's clock)}``."""
     while not queue.empty():
-        into.add(queue.get())
+        job_hash, pid = queue.get()
+        into[job_hash] = (pid, time.monotonic())
+
+
+def _death_text(exit_code: int | None) -> str:
+    """How a worker process ended, in words."""
+    if exit_code is None:
+        return "it vanished"
+    if exit_code < 0:
+        try:
+            name = signal.Signals(-exit_code).name
+        except ValueError:
+            name = "an unknown signal"
+        return f"it was killed by signal {-exit_code} ({name})"
+    return f"it exited with code {exit_code}"
 
 
 def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_retries: int,
                job_function: JobFunction, on_result: ResultSink,
-               on_idle: Callable[[], None] = lambda: None) -> None:
-    """Run jobs in a spawn-context process pool; survive worker deaths.
+               on_idle: Callable[[], None] = lambda: None,
+               job_timeout: float | None = None) -> None:
+    """Run jobs in a spawn-context process pool; survive worker deaths and hung jobs.
 
     When a worker process dies (a crash in native code, the out-of-memory
-    killer), the pool is broken and every unfinished job is lost. The jobs
-    that had started (each worker reports a job's start on a queue) count one
-    death each; all lost jobs go to a fresh pool, and a job with more than
-    ``max_retries`` deaths is recorded as failed. Jobs that were still waiting
-    are never charged, so one crashing job cannot use up their retries.
+    killer, ``os._exit``, a SIGKILL), the pool is broken and every unfinished
+    job is lost. The jobs that had started (each worker reports a job's start
+    and its PID on a queue) count one death each; all lost jobs go to a fresh
+    pool, and a job with more than ``max_retries`` deaths is recorded as
+    failed, with how its worker ended (exit code or signal). Jobs that were
+    still waiting are never charged, so one crashing job cannot use up their
+    retries.
+
+    A job running longer than ``job_timeout`` seconds (from its start in a
+    worker) has its worker killed and is recorded as failed at once (a hung
+    job would hang again); the other jobs that the broken pool took down go
+    to the fresh pool uncharged.
     """
     context = multiprocessing.get_context("spawn")
     deaths = {job.hash: 0 for job in jobs}
     remaining = list(jobs)
     while remaining:
         lost: list[Job] = []
-        started: set[str] = set()
+        started: dict[str, tuple[int, float]] = {}
         finished: set[str] = set()
+        timed_out: set[str] = set()
         submitted = time.time()
         # A SimpleQueue writes at once (no feeder thread), so a notice is not lost
         # when the worker dies right after sending it.
@@ -317,19 +370,24 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
         with _single_threaded_children():
             pool = ProcessPoolExecutor(max_workers=min(workers, len(remaining)),
                                        mp_context=context, initializer=_initialise_worker,
-                                       initargs=(started_jobs,))
+                                       initargs=(started_jobs, os.getpid()))
             try:
                 futures = {pool.submit(_run_reporting_start, job_function, job.config, job.hash,
                                        settings): job for job in remaining}
+                # Workers are spawned on submit; keep them to read their exit codes.
+                processes = dict(getattr(pool, "_processes", None) or {})
                 waiting = set(futures)
                 while waiting:
                     # Wake up now and then to empty the notice pipe, which would
                     # otherwise fill and block the workers.
                     ready, waiting = wait(waiting, timeout=0.5, return_when=FIRST_COMPLETED)
                     _drain(started_jobs, started)
+                    processes.update(getattr(pool, "_processes", None) or {})
                     on_idle()
                     for future in ready:
                         job = futures[future]
+                        if job.hash in timed_out:
+                            continue
                         try:
                             result = future.result()
                         except BrokenProcessPool:
@@ -340,6 +398,15 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
                                                    settings)
                         finished.add(job.hash)
                         on_result(result)
+                    if job_timeout is not None:
+                        for job in _overdue(futures, waiting, started, finished | timed_out,
+                                            job_timeout):
+                            timed_out.add(job.hash)
+                            _kill(started[job.hash][0])
+                            on_result(failed_result(
+                                job, f"timed out: the job ran longer than job_timeout = "
+                                f"{job_timeout:g} s, and its worker process was stopped",
+                                submitted, settings))
             except BaseException:
                 pool.shutdown(wait=False, cancel_futures=True)
                 raise
@@ -347,18 +414,49 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
         _drain(started_jobs, started)
         started_jobs.close()
         remaining = []
-        charged = [job for job in lost if job.hash in started and job.hash not in finished]
-        # Every round that loses jobs charges at least one, so the loop always ends.
-        for job in charged or lost:
+        lost = [job for job in lost if job.hash not in timed_out]
+        exit_codes = {job.hash: _exit_code(processes, started, job.hash) for job in lost}
+        running = [job for job in lost if job.hash in started and job.hash not in finished]
+        # The pool stops its other workers with SIGTERM once one dies: a job whose
+        # worker ended otherwise is the culprit. Failing that, every job that was
+        # running is charged. A round broken by a timeout charges no one else;
+        # any other round that loses jobs charges at least one, so the loop ends.
+        culprits = [job for job in running if exit_codes[job.hash] not in (None, -signal.SIGTERM)]
+        for job in [] if timed_out else (culprits or running or lost):
             deaths[job.hash] += 1
         for job in lost:
             if deaths[job.hash] > max_retries:
+                how = _death_text(exit_codes[job.hash])
                 on_result(failed_result(
                     job, f"the worker process running this job died {deaths[job.hash]} times "
-                    f"(max_retries = {max_retries}); it may have run out of memory or crashed "
-                    "in native code", submitted, settings))
+                    f"(max_retries = {max_retries}), the last time because {how}; it may "
+                    "have run out of memory or crashed in native code", submitted, settings))
             else:
                 remaining.append(job)
+
+
+def _exit_code(processes: Mapping[int, Any], started: Mapping[str, tuple[int, float]],
+               job_hash: str) -> int | None:
+    """The exit code of the worker that last ran a job (None: unknown, or still running)."""
+    worker = processes.get(started[job_hash][0]) if job_hash in started else None
+    return worker.exitcode if worker is not None else None
+
+
+def _overdue(futures: Mapping[Any, Job], waiting: set[Any],
+             started: Mapping[str, tuple[int, float]], settled: set[str],
+             job_timeout: float) -> list[Job]:
+    """The waiting jobs that started more than ``job_timeout`` seconds ago."""
+    now = time.monotonic()
+    return [futures[future] for future in waiting
+            if futures[future].hash in started and futures[future].hash not in settled
+            and now - started[futures[future].hash][1] > job_timeout]
+
+
+def _kill(pid: int) -> None:
+    try:
+        os.kill(pid, signal.SIGKILL)
+    except ProcessLookupError:
+        pass
 
 
 def import_ray() -> Any:
@@ -531,6 +629,8 @@ class RunSummary:
         wall_seconds: duration of the call, seconds.
         needs: for each not-applicable job's hash, what its agent needs that
             the task lacks (:attr:`NotApplicable.needs`).
+        left: with ``retry_failed``, the jobs neither done nor failed, which
+            were not run.
     """
 
     jobs: list[Job]
@@ -540,6 +640,7 @@ class RunSummary:
     failed: list[JobResult] = field(default_factory=list)
     wall_seconds: float = 0.0
     needs: dict[str, str] = field(default_factory=dict)
+    left: set[str] = field(default_factory=set)
 
     @property
     def ok(self) -> bool:
@@ -565,15 +666,21 @@ def _check_whole(path: str, value: Any, low: int) -> int:
 
 
 def check_run_options(workers: int | None, backend: str, address: str | None,
-                      max_retries: int) -> tuple[int, int]:
+                      max_retries: int, job_timeout: float | None = None) -> tuple[int, int]:
     """(workers, max_retries) after checking every option of :func:`run_suite`.
 
     Raises ConfigError for a bad value, an address without the Ray backend,
-    or the Ray backend without Ray installed.
+    a job timeout with it, or the Ray backend without Ray installed.
     """
     check_choice("backend", backend, BACKENDS)
     workers = _check_whole("workers", (os.cpu_count() or 1) if workers is None else workers, 1)
     max_retries = _check_whole("max_retries", max_retries, 0)
+    if job_timeout is not None:
+        check_positive("job_timeout", job_timeout)
+        if backend != "local":
+            raise ConfigError("job_timeout", job_timeout,
+                              "no job timeout unless backend is 'local' (Ray jobs run to "
+                              "the end)")
     if address is not None and backend != "ray":
         raise ConfigError("address", address, "no address unless backend is 'ray'")
     if backend == "ray":
@@ -604,8 +711,13 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
               backend: str = "local", address: str | None = None,
               settings: RunSettings | None = None, max_retries: int = 2,
               progress: Progress | bool = False, progress_every: float | None = None,
-              job_function: JobFunction = run_job) -> RunSummary:
+              job_function: JobFunction = run_job, job_timeout: float | None = None,
+              retry_failed: bool = False) -> RunSummary:
     """Run every job of ``suite`` not yet done in ``store``, recording each as it finishes.
+
+    The run holds the store's lock (:class:`~needbench.benchmarks.lock.ResultsLock`)
+    from before the first job until the last result is written, so a second
+    run on the same store refuses to start.
 
     Args:
         suite: a parsed suite (``benchmarks.spec.parse_suite``).
@@ -622,17 +734,36 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
             line (a terminal), or seconds between plain progress lines.
         job_function: what runs one job (a module-level function with the
             signature of :func:`run_job`, picklable by reference).
+        job_timeout: seconds a job may run before its worker is stopped and
+            it is recorded as failed (backend 'local'); None for no limit.
+        retry_failed: run only the jobs the store holds as failed (jobs
+            never run are left for a plain rerun; see ``RunSummary.left``).
 
     Raises:
-        ConfigError: for a bad argument, or backend 'ray' without Ray installed.
+        ConfigError: for a bad argument, backend 'ray' without Ray installed,
+            or a store another run holds or that cannot be written.
     """
-    workers, max_retries = check_run_options(workers, backend, address, max_retries)
+    workers, max_retries = check_run_options(workers, backend, address, max_retries,
+                                             job_timeout)
     settings = settings if settings is not None else RunSettings()
+    with ResultsLock(store.path):
+        return _run_locked(suite, store, workers, backend, address, settings, max_retries,
+                           progress, progress_every, job_function, job_timeout, retry_failed)
+
+
+def _run_locked(suite: Suite, store: Store, workers: int, backend: str, address: str | None,
+                settings: RunSettings, max_retries: int, progress: Progress | bool,
+                progress_every: float | None, job_function: JobFunction,
+                job_timeout: float | None, retry_failed: bool) -> RunSummary:
     clock = time.perf_counter()
     jobs = list({job.hash: job for job in expand(suite)}.values())
     completed = store.completed_hashes()
     summary = RunSummary(jobs=jobs, skipped={job.hash for job in jobs if job.hash in completed})
     pending = [job for job in jobs if job.hash not in completed]
+    if retry_failed:
+        failed = store.failed_hashes()
+        summary.left = {job.hash for job in pending if job.hash not in failed}
+        pending = [job for job in pending if job.hash in failed]
     if not isinstance(progress, Progress):
         progress = Progress(len(pending), len(summary.skipped), bool(progress),
                             every=progress_every)
@@ -654,7 +785,7 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
     try:
         if pending and backend == "local":
             _run_local(pending, settings, workers, max_retries, job_function, record,
-                       progress.tick)
+                       progress.tick, job_timeout)
         elif pending:
             _run_ray(pending, settings, workers, address, max_retries, job_function, record,
                      progress.tick)

@@ -5,9 +5,11 @@ A suite file (parsed with the standard library's ``tomllib``):
     [suite]
     name = "warm-day"                 # required
     description = "Two tasks, ..."    # optional
-    seeds = [0, 1, 2]                 # required: distinct integers >= 0
+    seeds = [0, 1, 2]                 # required: distinct integers in [0, 2**32 - 1]
     eval_episodes = 10                # optional: evaluation episodes per job, >= 1 (default 10)
     gamma = 0.99                      # optional: discount in (0, 1) for metrics (default 0.99)
+    max_total_steps = 1000000000      # optional: the largest learning budget allowed (a guard
+                                      # against a typo that would run for days; default 10**9)
 
     [[task]]                          # one or more
     id = "needbench/Menu-v0"          # a registered Gymnasium id
@@ -16,7 +18,7 @@ A suite file (parsed with the standard library's ``tomllib``):
 
     [[agent]]                         # one or more
     name = "tabular-q"                # a registered agent name
-    total_steps = 20000               # learning budget in env steps, >= 0
+    total_steps = 20000               # learning budget in env steps, in [0, max_total_steps]
     [agent.hyperparameters]           # optional: keyword arguments for make_agent
     learning_rate = 0.1
 
@@ -63,12 +65,17 @@ from dataclasses import fields as dataclass_fields
 from pathlib import Path
 from typing import Any
 
+from needbench.agents.base import MAX_SEED
 from needbench.agents.curves import DEFAULT_DISCOUNT
 from needbench.envs.errors import ConfigError
 
 SWEEP_TARGETS = ("task", "agent", "gamma")
 DEFAULT_EVAL_EPISODES = 10
 DEFAULT_GAMMA = DEFAULT_DISCOUNT
+#: The default bound on a learning budget, env steps; ``[suite] max_total_steps`` raises it.
+DEFAULT_MAX_TOTAL_STEPS = 10**9
+#: What SQLite's INTEGER holds: the bound on ``max_total_steps`` itself.
+_LARGEST_INTEGER = 2**63 - 1
 
 
 class SuiteError(ConfigError):
@@ -164,6 +171,8 @@ class Suite:
     Attributes:
         eval_episodes: evaluation episodes per job.
         gamma: discount factor in (0, 1) for the discounted metrics.
+        max_total_steps: the largest learning budget the suite accepts (not
+            part of any job's config or hash).
         source: the file it came from (not part of equality).
     """
 
@@ -175,6 +184,7 @@ class Suite:
     eval_episodes: int = DEFAULT_EVAL_EPISODES
     gamma: float = DEFAULT_GAMMA
     sweeps: tuple[Sweep, ...] = ()
+    max_total_steps: int = DEFAULT_MAX_TOTAL_STEPS
     source: str = field(default="<string>", compare=False)
 
 
@@ -183,7 +193,7 @@ class Suite:
 # ----------------------------------------------------------------------------
 
 _TOP_KEYS = ("suite", "task", "agent", "sweep")
-_SUITE_KEYS = ("name", "description", "seeds", "eval_episodes", "gamma")
+_SUITE_KEYS = ("name", "description", "seeds", "eval_episodes", "gamma", "max_total_steps")
 _TASK_KEYS = ("id", "kwargs")
 _AGENT_KEYS = ("name", "total_steps", "hyperparameters")
 _SWEEP_KEYS = ("target", "parameter", "values", "match")
@@ -247,12 +257,21 @@ class _Parser:
         return value
 
     def integer(self, table: Mapping[str, Any], key: str, path: str, *, minimum: int,
-                default: Any = MISSING) -> int:
+                default: Any = MISSING, maximum: int = _LARGEST_INTEGER) -> int:
         value = table.get(key, default)
-        if not _is_integer(value) or value < minimum:
+        if not _is_integer(value) or not minimum <= value <= maximum:
+            allowed = (f"an integer >= {minimum} and < 2**63" if maximum == _LARGEST_INTEGER
+                       else f"an integer in [{minimum}, {maximum}]")
             raise self.error(_join(path, key), value,
-                             f"an integer >= {minimum}" + (" (required)" if value is MISSING
-                                                           else ""))
+                             allowed + (" (required)" if value is MISSING else ""))
+        return value
+
+    def budget(self, value: Any, path: str, maximum: int) -> int:
+        """A learning budget in env steps: an integer in [0, maximum]."""
+        if not _is_integer(value) or not 0 <= value <= maximum:
+            raise self.error(path, value, f"an integer in [0, {maximum}], env steps of "
+                             "learning (raise [suite] max_total_steps to allow more)"
+                             + (" (required)" if value is MISSING else ""))
         return value
 
     def gamma(self, value: Any, path: str) -> float:
@@ -291,8 +310,8 @@ class _Parser:
             raise self.error("suite.seeds", seeds,
                              allowed + (" (required)" if seeds is MISSING else ""))
         for i, seed in enumerate(seeds):
-            if not _is_integer(seed) or seed < 0:
-                raise self.error(f"suite.seeds[{i}]", seed, "an integer >= 0")
+            if not _is_integer(seed) or not 0 <= seed <= MAX_SEED:
+                raise self.error(f"suite.seeds[{i}]", seed, f"an integer in [0, {MAX_SEED}]")
             if seed in seeds[:i]:
                 raise self.error(f"suite.seeds[{i}]", seed, "a seed not already listed")
         return {
@@ -303,6 +322,8 @@ class _Parser:
             "eval_episodes": self.integer(suite, "eval_episodes", "suite", minimum=1,
                                           default=DEFAULT_EVAL_EPISODES),
             "gamma": self.gamma(suite.get("gamma", DEFAULT_GAMMA), "suite.gamma"),
+            "max_total_steps": self.integer(suite, "max_total_steps", "suite", minimum=1,
+                                            default=DEFAULT_MAX_TOTAL_STEPS),
         }
 
     def task(self, table: dict[str, Any], path: str, known: Collection[str] | None) -> TaskSpec:
@@ -312,10 +333,12 @@ class _Parser:
                             header=f"[{path.split('[')[0]}.kwargs]")
         return TaskSpec(task_id, self.plain_value(kwargs, f"{path}.kwargs"))
 
-    def agent(self, table: dict[str, Any], path: str, known: Collection[str] | None) -> AgentSpec:
+    def agent(self, table: dict[str, Any], path: str, known: Collection[str] | None,
+              max_total_steps: int) -> AgentSpec:
         self.check_keys(table, _AGENT_KEYS, path)
         name = self.name(self.string(table, "name", path), f"{path}.name", known, "agent name")
-        total_steps = self.integer(table, "total_steps", path, minimum=0)
+        total_steps = self.budget(table.get("total_steps", MISSING), f"{path}.total_steps",
+                                  max_total_steps)
         hyperparameters = self.table(table.get("hyperparameters", {}),
                                      f"{path}.hyperparameters",
                                      header=f"[{path.split('[')[0]}.hyperparameters]")
@@ -323,7 +346,7 @@ class _Parser:
                          self.plain_value(hyperparameters, f"{path}.hyperparameters"))
 
     def sweep(self, table: dict[str, Any], path: str, task_ids: list[str],
-              agent_names: list[str]) -> Sweep:
+              agent_names: list[str], max_total_steps: int) -> Sweep:
         self.check_keys(table, _SWEEP_KEYS, path)
         target = table.get("target", MISSING)
         if target not in SWEEP_TARGETS:
@@ -348,9 +371,8 @@ class _Parser:
         for i, value in enumerate(values):
             if target == "gamma":
                 self.gamma(value, f"{path}.values[{i}]")
-            if target == "agent" and parameter == "total_steps" \
-                    and (not _is_integer(value) or value < 0):
-                raise self.error(f"{path}.values[{i}]", value, "an integer >= 0 (a step budget)")
+            if target == "agent" and parameter == "total_steps":
+                self.budget(value, f"{path}.values[{i}]", max_total_steps)
             if canonical_json(value) in seen:
                 raise self.error(f"{path}.values[{i}]", value, "a value not already listed")
             seen.append(canonical_json(value))
@@ -375,7 +397,7 @@ class _Parser:
         header = self.suite_table(document)
         tasks = tuple(self.task(table, f"task[{i}]", known_tasks)
                       for i, table in enumerate(self.tables(document, "task", required=True)))
-        agents = tuple(self.agent(table, f"agent[{i}]", known_agents)
+        agents = tuple(self.agent(table, f"agent[{i}]", known_agents, header["max_total_steps"])
                        for i, table in enumerate(self.tables(document, "agent", required=True)))
         for kind, items, attribute in (("task", tasks, "id"), ("agent", agents, "name")):
             names = [getattr(item, attribute) for item in items]
@@ -386,7 +408,8 @@ class _Parser:
                                      "(use a [[sweep]] to vary its settings)")
         task_ids = [task.id for task in tasks]
         agent_names = [agent.name for agent in agents]
-        sweeps = tuple(self.sweep(table, f"sweep[{i}]", task_ids, agent_names)
+        sweeps = tuple(self.sweep(table, f"sweep[{i}]", task_ids, agent_names,
+                                  header["max_total_steps"])
                        for i, table in enumerate(self.tables(document, "sweep", required=False)))
         self.check_sweep_overlap(sweeps, tasks, agents)
         return Suite(tasks=tasks, agents=agents, sweeps=sweeps, source=self.source, **header)
@@ -879,7 +902,8 @@ def to_toml(suite: Suite) -> str:
     lines = ["[suite]", f"name = {_toml_value(suite.name)}",
              f"description = {_toml_value(suite.description)}",
              f"seeds = {_toml_value(list(suite.seeds))}",
-             f"eval_episodes = {suite.eval_episodes}", f"gamma = {_toml_value(suite.gamma)}"]
+             f"eval_episodes = {suite.eval_episodes}", f"gamma = {_toml_value(suite.gamma)}",
+             f"max_total_steps = {suite.max_total_steps}"]
     for task in suite.tasks:
         lines += ["", "[[task]]", f"id = {_toml_value(task.id)}"]
         if task.kwargs:

@@ -6,8 +6,16 @@ Tables:
                      seed, sweep point and full config (JSON), status 'done' or
                      'failed', error traceback, start/finish times (ISO 8601,
                      UTC), wall_seconds, package version, git revision,
+                     the software it ran with (``environment``: JSON of the
+                     Python, needbench, NumPy, numba, Gymnasium, SciPy, torch
+                     and Stable-Baselines3 versions, null for those absent),
                      and the file of the trained agent if the run kept it
                      (relative to the store's folder when it lies inside it).
+    failed_attempts  failures no longer in ``runs``: a failed row moves here when
+                     the job is recorded again, or when a later success of the
+                     same cell (suite, task, agent, seed, sweep point; e.g. after
+                     a config fix changed the hash) supersedes it, with the hash
+                     that superseded it and when.
     episodes         one row per evaluation episode: all metrics as JSON, plus
                      the most queried ones as plain columns ("return",
                      discounted_drive, time_in_band, survived, length).
@@ -15,7 +23,8 @@ Tables:
     traces           one row per array of an episode trace: name, dtype, shape
                      and the zlib-compressed bytes.
     schema_version   the layout version, checked when a file is opened (a
-                     version-1 file gains the agent_file column on opening).
+                     version-1 file gains ``environment``, ``agent_file`` and
+                     ``failed_attempts``).
 
 The runner's driver process alone writes, one transaction per finished job
 (:meth:`Store.record_job`), so an interrupted sweep resumes with nothing lost
@@ -26,10 +35,12 @@ query is parameterised.
 from __future__ import annotations
 
 import csv
+import functools
 import importlib
 import importlib.metadata
 import json
 import math
+import platform
 import sqlite3
 import zlib
 from collections.abc import Iterator, Mapping, Sequence
@@ -45,6 +56,10 @@ from needbench.benchmarks.metrics import summarise
 from needbench.envs.errors import ConfigError
 
 SCHEMA_VERSION = 2
+
+#: Distributions whose versions every run records (None when not installed).
+RECORDED_DISTRIBUTIONS = ("needbench", "numpy", "numba", "gymnasium", "scipy", "torch",
+                          "stable-baselines3")
 STATUSES = ("done", "failed")
 
 # Metrics copied from the JSON into plain columns: (column, metric key, type).
@@ -56,26 +71,47 @@ _EPISODE_COLUMNS = (
     ("length", "length", int),
 )
 
-_SCHEMA = (
-    "CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL)",
-    """CREATE TABLE IF NOT EXISTS runs (
-        hash TEXT PRIMARY KEY,
+# The columns runs and failed_attempts share: a job's identity, then how an attempt went.
+_IDENTITY_COLUMNS = """
         suite TEXT NOT NULL,
         task_id TEXT NOT NULL,
         agent TEXT NOT NULL,
         seed INTEGER NOT NULL,
         sweep TEXT NOT NULL,
-        config TEXT NOT NULL,
-        status TEXT NOT NULL CHECK (status IN ('done', 'failed')),
+        config TEXT NOT NULL,"""
+_ATTEMPT_COLUMNS = """
         error TEXT,
         started TEXT NOT NULL,
         finished TEXT NOT NULL,
         wall_seconds REAL NOT NULL,
         package_version TEXT NOT NULL,
-        git_revision TEXT,
+        git_revision TEXT,"""
+
+# What version 2 added; run as well on a version-1 file to bring it up to date.
+_HISTORY_SCHEMA = (
+    f"""CREATE TABLE IF NOT EXISTS failed_attempts (
+        hash TEXT NOT NULL,{_IDENTITY_COLUMNS}{_ATTEMPT_COLUMNS}
+        environment TEXT NOT NULL,
+        superseded_by TEXT NOT NULL,
+        superseded_at TEXT NOT NULL
+    )""",
+    "CREATE INDEX IF NOT EXISTS failed_attempts_by_hash ON failed_attempts (hash)",
+)
+
+# The columns a failed row keeps when it moves to failed_attempts.
+_HISTORY_COLUMNS = ("hash, suite, task_id, agent, seed, sweep, config, error, started, finished,"
+                    " wall_seconds, package_version, git_revision, environment")
+
+_SCHEMA = (
+    "CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL)",
+    f"""CREATE TABLE IF NOT EXISTS runs (
+        hash TEXT PRIMARY KEY,{_IDENTITY_COLUMNS}
+        status TEXT NOT NULL CHECK (status IN ('done', 'failed')),{_ATTEMPT_COLUMNS}
+        environment TEXT NOT NULL DEFAULT '{{}}',
         agent_file TEXT
     )""",
     "CREATE INDEX IF NOT EXISTS runs_by_cell ON runs (suite, task_id, agent, status)",
+    *_HISTORY_SCHEMA,
     """CREATE TABLE IF NOT EXISTS episodes (
         run_hash TEXT NOT NULL REFERENCES runs (hash) ON DELETE CASCADE,
         episode INTEGER NOT NULL,
@@ -111,11 +147,23 @@ _EXPORT_COLUMNS = ("hash", "suite", "task_id", "agent", "seed", "sweep", "status
                    "wall_seconds", "package_version", "git_revision", "agent_file")
 
 
-def _installed_version() -> str:
+def _distribution_version(name: str) -> str | None:
     try:
-        return importlib.metadata.version("needbench")
+        return importlib.metadata.version(name)
     except importlib.metadata.PackageNotFoundError:
-        return "unknown"
+        return None
+
+
+def _installed_version() -> str:
+    return _distribution_version("needbench") or "unknown"
+
+
+@functools.cache
+def software_versions() -> dict[str, str | None]:
+    """The Python version and those of :data:`RECORDED_DISTRIBUTIONS` in this process."""
+    versions: dict[str, str | None] = {"python": platform.python_version()}
+    versions.update({name: _distribution_version(name) for name in RECORDED_DISTRIBUTIONS})
+    return versions
 
 
 @dataclass(kw_only=True)
@@ -140,6 +188,8 @@ class JobResult:
         git_revision: commit of the checkout that ran the job, if known.
         agent_file: the file the trained agent was saved to (``Agent.save``),
             if the run kept it.
+        environment: the software it ran with (:func:`software_versions` of
+            the process that made the result).
     """
 
     hash: str
@@ -155,6 +205,7 @@ class JobResult:
     package_version: str = field(default_factory=_installed_version)
     git_revision: str | None = None
     agent_file: str | None = None
+    environment: dict[str, str | None] = field(default_factory=lambda: dict(software_versions()))
 
 
 # ----------------------------------------------------------------------------
@@ -207,6 +258,7 @@ def _run_row(result: JobResult, folder: Path) -> tuple:
         str(result.package_version),
         result.git_revision,
         _stored_path(result.agent_file, folder),
+        json.dumps(result.environment, sort_keys=True),
     )
 
 
@@ -263,21 +315,48 @@ class Store:
     Args:
         path: the database file; its folder is created if needed.
 
+    Raises:
+        ConfigError: when the path is a folder, its folder cannot be made (a
+            file of that name, no permission), or the file is not a SQLite
+            database (path ``results``).
+
     Open one ``Store`` per process (or thread): a connection is not shared.
     """
 
     def __init__(self, path: str | Path):
         self.path = Path(path)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        # isolation_level=None: no implicit transactions; record_job opens its own.
-        self._connection = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
-        self._connection.row_factory = sqlite3.Row
-        self.journal_mode = self._connection.execute("PRAGMA journal_mode=WAL").fetchone()[0]
-        # NORMAL is durable across application crashes in WAL mode, and much faster than FULL.
-        self._connection.execute("PRAGMA synchronous=NORMAL")
-        self._connection.execute("PRAGMA foreign_keys=ON")
+        if self.path.is_dir():
+            raise ConfigError("results", str(self.path), "a results store file, not a folder")
         try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+        except (FileExistsError, NotADirectoryError) as error:
+            raise ConfigError("results", str(self.path.parent),
+                              "a folder for the results store (a file of that name exists)"
+                              ) from error
+        except PermissionError as error:
+            raise ConfigError("results", str(self.path.parent),
+                              "a folder this user may create") from error
+        try:
+            # isolation_level=None: no implicit transactions; record_job opens its own.
+            self._connection = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
+        except sqlite3.Error as error:
+            raise ConfigError("results", str(self.path),
+                              f"a SQLite file this user may open ({error})") from error
+        self._connection.row_factory = sqlite3.Row
+        try:
+            self.journal_mode = self._connection.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+            # NORMAL is durable across application crashes in WAL mode, and much faster than FULL.
+            self._connection.execute("PRAGMA synchronous=NORMAL")
+            self._connection.execute("PRAGMA foreign_keys=ON")
             self._create_schema()
+        except sqlite3.DatabaseError as error:
+            self._connection.close()
+            # OperationalError: the file could not be opened or written (a
+            # read-only folder, a full disk); any other: the file is not SQLite.
+            allowed = ("a SQLite file this user can open and write" if isinstance(
+                error, sqlite3.OperationalError) else "a needbench results store, a SQLite "
+                "database")
+            raise ConfigError("results", str(self.path), f"{allowed} ({error})") from error
         except BaseException:
             self._connection.close()
             raise
@@ -299,16 +378,23 @@ class Store:
         versions = [row[0] for row in self._connection.execute(
             "SELECT version FROM schema_version")]
         if versions == [1]:
-            # Version 2 only adds the runs' agent_file column (empty for older runs).
-            with self._transaction():
-                self._connection.execute("ALTER TABLE runs ADD COLUMN agent_file TEXT")
-                self._connection.execute("UPDATE schema_version SET version = ?",
-                                         (SCHEMA_VERSION,))
+            self._upgrade_from_version_1()
             versions = [SCHEMA_VERSION]
         if versions != [SCHEMA_VERSION]:
             raise ConfigError(f"{self.path}: schema_version", versions,
                               f"[{SCHEMA_VERSION}], the layout this needbench writes; "
                               "use a new results file")
+
+    def _upgrade_from_version_1(self) -> None:
+        """Version 2 added runs.environment, runs.agent_file (empty for older runs) and
+        the failed_attempts table."""
+        with self._transaction():
+            self._connection.execute(
+                "ALTER TABLE runs ADD COLUMN environment TEXT NOT NULL DEFAULT '{}'")
+            self._connection.execute("ALTER TABLE runs ADD COLUMN agent_file TEXT")
+            for statement in _HISTORY_SCHEMA:
+                self._connection.execute(statement)
+            self._connection.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION,))
 
     def close(self) -> None:
         self._connection.close()
@@ -338,13 +424,22 @@ class Store:
         rows = self._connection.execute("SELECT hash FROM runs WHERE status = ?", ("done",))
         return {row[0] for row in rows}
 
+    def failed_hashes(self) -> set[str]:
+        """Hashes of the runs recorded as 'failed' (and not superseded since)."""
+        rows = self._connection.execute("SELECT hash FROM runs WHERE status = ?", ("failed",))
+        return {row[0] for row in rows}
+
     def record_job(self, result: JobResult) -> bool:
         """Write a finished job (run row, episodes, curves, traces) in one transaction.
 
         Returns False, writing nothing, when the hash is already 'done'. A
         'failed' row is replaced (with its episodes, curves and traces) by the
-        new result. If any write fails, the transaction rolls back and the
-        store is as before.
+        new result and moves to ``failed_attempts``. A 'done' result also
+        supersedes the failed rows of its cell (same suite, task, agent, seed
+        and sweep point) under other hashes, e.g. of a config since fixed:
+        they move to ``failed_attempts`` too, so the results table counts the
+        cell's success, not its old failure. If any write fails, the
+        transaction rolls back and the store is as before.
         """
         run = _run_row(result, self.path.parent)
         episodes = _episode_rows(result)
@@ -355,20 +450,37 @@ class Store:
                                            (result.hash,)).fetchone()
             if row is not None and row["status"] == "done":
                 return False
-            if row is not None:
-                # ON DELETE CASCADE removes the failed attempt's episodes, curves, traces.
-                self._connection.execute("DELETE FROM runs WHERE hash = ?", (result.hash,))
+            superseded = "hash = ?"
+            parameters: list[Any] = [result.hash]
+            if result.status == "done":
+                # run[1:6]: suite, task_id, agent, seed, sweep.
+                superseded += (" OR (status = 'failed' AND suite = ? AND task_id = ?"
+                               " AND agent = ? AND seed = ? AND sweep = ?)")
+                parameters += list(run[1:6])
+            self._retire_failures(superseded, parameters, result.hash)
             self._insert_run(run)
             self._insert_episodes(episodes)
             self._insert_curves(curves)
             self._insert_traces(traces)
         return True
 
+    def _retire_failures(self, where: str, parameters: list[Any], by: str) -> None:
+        """Move the failed runs matching ``where`` to failed_attempts, superseded by ``by``."""
+        now = _timestamp(datetime.now(tz=UTC).timestamp(), "now")
+        self._connection.execute(
+            f"INSERT INTO failed_attempts ({_HISTORY_COLUMNS}, superseded_by, superseded_at)"
+            f" SELECT {_HISTORY_COLUMNS}, ?, ? FROM runs WHERE status = 'failed' AND ({where})",
+            [by, now, *parameters])
+        # ON DELETE CASCADE removes the failed attempts' episodes, curves, traces.
+        self._connection.execute(f"DELETE FROM runs WHERE status = 'failed' AND ({where})",
+                                 parameters)
+
     def _insert_run(self, row: tuple) -> None:
         self._connection.execute(
             "INSERT INTO runs (hash, suite, task_id, agent, seed, sweep, config, status, error,"
-            " started, finished, wall_seconds, package_version, git_revision, agent_file)"
-            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", row)
+            " started, finished, wall_seconds, package_version, git_revision, agent_file,"
+            " environment)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", row)
 
     def _insert_episodes(self, rows: list[tuple]) -> None:
         columns = ", ".join(column for column, _, _ in _EPISODE_COLUMNS)
@@ -405,13 +517,15 @@ class Store:
             {"suite": suite, "task_id": task_id, "agent": agent, "status": status})
         rows = self._connection.execute(
             f"SELECT * FROM runs{where} ORDER BY suite, task_id, agent, seed, hash", parameters)
-        runs = []
-        for row in rows:
-            run = dict(row)
-            run["config"] = json.loads(run["config"])
-            run["sweep"] = json.loads(run["sweep"])
-            runs.append(run)
-        return runs
+        return [_decoded(row) for row in rows]
+
+    def failed_attempts(self, hash: str | None = None) -> list[dict[str, Any]]:
+        """Failures moved out of ``runs`` (oldest first), with ``config``, ``sweep`` and
+        ``environment`` decoded, and ``superseded_by``, ``superseded_at``."""
+        where, parameters = self._where({"hash": hash})
+        rows = self._connection.execute(
+            f"SELECT * FROM failed_attempts{where} ORDER BY superseded_at, rowid", parameters)
+        return [_decoded(row) for row in rows]
 
     def episodes(self, hash: str | None = None, *, suite: str | None = None,
                  task_id: str | None = None, agent: str | None = None,
@@ -517,6 +631,14 @@ class Store:
         path.parent.mkdir(parents=True, exist_ok=True)
         parquet.write_table(table, path)
         return path
+
+
+def _decoded(row: sqlite3.Row) -> dict[str, Any]:
+    """A row of runs or failed_attempts with its JSON columns decoded."""
+    run = dict(row)
+    for column in ("config", "sweep", "environment"):
+        run[column] = json.loads(run[column])
+    return run
 
 
 def _metric_columns(summaries: Sequence[Mapping[str, Any]]) -> list[str]:

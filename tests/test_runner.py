@@ -297,3 +297,15 @@ def test_agents_say_not_applicable_for_tasks_outside_their_reach(agent, task):
     env = gym.make(task)
     with pytest.raises(NotApplicableError):
         make_agent(agent, env.observation_space, env.action_space).learn(env, 10, seed=0)
+
+
+def test_a_rerun_replaces_the_event_folder_of_its_job(tmp_path):
+    # Issue 11, item 10: killed runs left partial event files beside the complete ones.
+    job = _job(total_steps=200)
+    settings = RunSettings(tensorboard_root=str(tmp_path))
+    assert run_job(job.config, job.hash, settings).status == "done"
+    (folder,) = tmp_path.iterdir()
+    (folder / "events.out.tfevents.0.partial-from-a-killed-run").write_bytes(b"\0")
+    assert run_job(job.config, job.hash, settings).status == "done"
+    assert [path.parent for path in tmp_path.rglob("*") if path.is_file()] == [folder]
+    assert _scalar_events(folder)  # the one file left is the new run's, and reads

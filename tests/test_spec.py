@@ -109,6 +109,13 @@ def _replace(old: str, new: str, text: str = BASE) -> str:
 
 
 SWEEP = '\n[[sweep]]\ntarget = "task"\nparameter = "task_weight"\nvalues = [0.0, 1.0]\n'
+SWEPT_BUDGET = """
+[[sweep]]
+target = "agent"
+parameter = "total_steps"
+values = [10, 2000000000]
+"""
+
 SECOND_AGENT = '\n[[agent]]\nname = "tabular-q"\ntotal_steps = -5\n'
 
 # (case, suite text, parse_suite keywords, key path, value as shown, allowed, suggestion)
@@ -124,7 +131,7 @@ ERRORS = [
     ("missing seeds", _replace("seeds = [0]\n", ""), {}, "suite.seeds", "<missing>",
      "distinct integers >= 0", None),
     ("seed of the wrong type", _replace("seeds = [0]", 'seeds = [0, "one"]'), {},
-     "suite.seeds[1]", "'one'", "an integer >= 0", None),
+     "suite.seeds[1]", "'one'", "an integer in [0, 4294967295]", None),
     ("repeated seed", _replace("seeds = [0]", "seeds = [0, 0]"), {}, "suite.seeds[1]", "0",
      "not already listed", None),
     ("gamma out of range", _replace("seeds = [0]", "seeds = [0]\ngamma = 1.0"), {},
@@ -134,9 +141,23 @@ ERRORS = [
     ("boolean for an integer", _replace("seeds = [0]", "seeds = [0]\neval_episodes = true"),
      {}, "suite.eval_episodes", "True", "an integer >= 1", None),
     ("negative budget", BASE + SECOND_AGENT, {}, "agent[1].total_steps", "-5",
-     "an integer >= 0", None),
+     "an integer in [0, 1000000000]", None),
     ("fractional budget", _replace("total_steps = 10", "total_steps = 1.5"), {},
-     "agent[0].total_steps", "1.5", "an integer >= 0", None),
+     "agent[0].total_steps", "1.5", "an integer in [0, 1000000000]", None),
+    # Issue 11, item 3: a seed SQLite's INTEGER cannot hold was accepted, then crashed the store.
+    ("seed of 2**63", _replace("seeds = [0]", "seeds = [9223372036854775808]"), {},
+     "suite.seeds[0]", "9223372036854775808", "an integer in [0, 4294967295]", None),
+    ("seed above numpy's legacy range", _replace("seeds = [0]", "seeds = [4294967296]"), {},
+     "suite.seeds[0]", "4294967296", "an integer in [0, 4294967295]", None),
+    # Issue 11, item 11: a budget of 2**63 steps would run until killed.
+    ("budget of 2**63", _replace("total_steps = 10", "total_steps = 9223372036854775807"), {},
+     "agent[0].total_steps", "9223372036854775807", "raise [suite] max_total_steps", None),
+    ("budget above a lowered bound", _replace("seeds = [0]", "seeds = [0]\nmax_total_steps = 5"),
+     {}, "agent[0].total_steps", "10", "an integer in [0, 5]", None),
+    ("bound on budgets of zero", _replace("seeds = [0]", "seeds = [0]\nmax_total_steps = 0"),
+     {}, "suite.max_total_steps", "0", "an integer >= 1", None),
+    ("swept budget above the bound", BASE + SWEPT_BUDGET, {}, "sweep[0].values[1]",
+     "2000000000", "max_total_steps", None),
     ("no task", _replace('[[task]]\nid = "needbench/Menu-v0"\n', ""), {}, "task", "<missing>",
      "at least one [[task]]", None),
     ("task as a single table", _replace("[[task]]", "[task]"), {}, "task",
@@ -456,3 +477,17 @@ def test_the_cli_exits_2_naming_the_file_before_making_a_folder(tmp_path, capsys
     err = capsys.readouterr().err
     assert f"{path}: task[0].kwargs.max_step = 40" in err and "max_steps" in err
     assert not (tmp_path / "out").exists()
+
+
+def test_max_total_steps_lets_a_suite_ask_for_more():
+    text = BASE.replace("total_steps = 10", "total_steps = 3000000000")
+    with pytest.raises(ConfigError, match="max_total_steps"):
+        spec.parse_suite(text)
+    suite = spec.parse_suite(text.replace("seeds = [0]",
+                                          "seeds = [0]\nmax_total_steps = 4000000000"))
+    assert suite.max_total_steps == 4_000_000_000 and suite.agents[0].total_steps == 3_000_000_000
+    assert spec.parse_suite(spec.to_toml(suite)) == suite
+    # The bound is not part of any job: raising it keeps every hash.
+    lowered = spec.parse_suite(BASE.replace("seeds = [0]", "seeds = [0]\nmax_total_steps = 10"))
+    assert [job.hash for job in spec.expand(lowered)] == \
+        [job.hash for job in spec.expand(spec.parse_suite(BASE))]

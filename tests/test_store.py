@@ -332,6 +332,8 @@ def test_a_version_1_store_gains_the_agent_file_column(tmp_path):
         store.record_job(_result(JOBS[0]))
     with sqlite3.connect(path) as connection:  # the layout of version 1
         connection.execute("ALTER TABLE runs DROP COLUMN agent_file")
+        connection.execute("ALTER TABLE runs DROP COLUMN environment")
+        connection.execute("DROP TABLE failed_attempts")
         connection.execute("UPDATE schema_version SET version = 1")
     with Store(path) as store:
         assert [run["agent_file"] for run in store.runs()] == [None]
@@ -339,3 +341,72 @@ def test_a_version_1_store_gains_the_agent_file_column(tmp_path):
         assert store.record_job(_result(JOBS[1]))
     with sqlite3.connect(path) as connection:
         assert connection.execute("SELECT version FROM schema_version").fetchall() == [(2,)]
+
+
+def test_a_file_that_is_not_sqlite_is_a_config_error(tmp_path):
+    # Issue 11, item 1: this was a raw DatabaseError.
+    path = tmp_path / "x.sqlite3"
+    path.write_text("hello\n")
+    with pytest.raises(ConfigError, match="a needbench results store") as caught:
+        Store(path)
+    assert caught.value.path == "results" and caught.value.value == str(path)
+    assert path.read_text() == "hello\n"  # left as it was
+
+
+def test_a_store_under_a_file_or_at_a_folder_is_a_config_error(tmp_path):
+    # Issue 11, item 2: a file where the store's folder should be was a raw FileExistsError.
+    (tmp_path / "taken").write_text("not a folder")
+    with pytest.raises(ConfigError, match="a file of that name exists"):
+        Store(tmp_path / "taken" / "results.sqlite3")
+    with pytest.raises(ConfigError, match="not a folder"):
+        Store(tmp_path)
+
+
+def test_a_later_success_supersedes_failures_of_its_cell(tmp_path):
+    # Issue 11, item 8: after a fix changed the job's hash, the old failure still counted.
+    store = Store(tmp_path / "results.sqlite")
+    broken, other = JOBS[0], JOBS[1]
+    store.record_job(_result(broken, status="failed"))
+    store.record_job(_result(other, status="failed"))
+    fixed_config = {**broken.config, "agent": {**broken.config["agent"], "total_steps": 5}}
+    fixed = spec.Job(fixed_config)
+    assert fixed.hash != broken.hash
+    store.record_job(_result(fixed))
+    runs = {run["hash"]: run["status"] for run in store.runs()}
+    assert runs == {fixed.hash: "done", other.hash: "failed"}  # another cell's failure stays
+    (attempt,) = store.failed_attempts()
+    assert attempt["hash"] == broken.hash and attempt["superseded_by"] == fixed.hash
+    assert attempt["error"] == "Traceback: the agent fell over"
+    assert attempt["config"] == broken.config
+    # A rerun of the same hash moves the failed row to the history as well.
+    store.record_job(_result(other))
+    assert store.failed_hashes() == set()
+    assert [a["hash"] for a in store.failed_attempts()] == [broken.hash, other.hash]
+    assert _counts(store.path)["runs"] == 2
+
+
+def test_every_run_records_the_software_it_ran_with(tmp_path):
+    store = Store(tmp_path / "results.sqlite")
+    store.record_job(_result(JOBS[0]))
+    (run,) = store.runs()
+    environment = run["environment"]
+    assert set(environment) >= {"python", "needbench", "numpy", "numba", "gymnasium",
+                                "torch", "stable-baselines3"}
+    assert environment["numpy"] == np.__version__
+    assert environment["python"] == ".".join(map(str, sys.version_info[:3]))
+    assert run["config"] == JOBS[0].config and run["git_revision"] == "abc123"
+
+
+def test_a_version_1_store_is_brought_up_to_date(tmp_path):
+    path = tmp_path / "results.sqlite"
+    Store(path).record_job(_result(JOBS[0]))
+    with sqlite3.connect(path) as connection:  # as version 1 wrote it
+        connection.execute("DROP TABLE failed_attempts")
+        connection.execute("ALTER TABLE runs DROP COLUMN environment")
+        connection.execute("ALTER TABLE runs DROP COLUMN agent_file")
+        connection.execute("UPDATE schema_version SET version = 1")
+    store = Store(path)
+    (run,) = store.runs()
+    assert run["environment"] == {} and store.failed_attempts() == []
+    store.record_job(_result(JOBS[1]))
+    assert len(store.runs()) == 2

@@ -180,3 +180,20 @@ def test_unknown_keyword_is_named(task_id):
         gym.make(task_id, on_lethal="ignore")
     with pytest.raises(ConfigError, match="needs"):
         gym.make(task_id, needs=("energy", "sleep"))
+
+
+@pytest.mark.parametrize(("kwargs", "path", "allowed"), [
+    # Issue 11, item 4: inf times "alive" made every reward NaN.
+    ({"lethal_penalty": float("inf")}, "lethal_penalty", "a finite number"),
+    ({"lethal_penalty": float("nan")}, "lethal_penalty", "a finite number"),
+    ({"lethal_penalty": -1.0}, "lethal_penalty", "a finite number >= 0"),
+    # Item 5: the first step raised NumPy's broadcasting error.
+    ({"reward": "sensory_estimate", "sensory_bias": [0.0] * 7}, "sensory_bias",
+     "a list of 2 numbers (one per need)"),
+    # Item 6: any non-empty string was taken as true.
+    ({"interoception": "no"}, "interoception", "True or False"),
+])
+def test_task_arguments_of_issue_11_are_config_errors(kwargs, path, allowed):
+    with pytest.raises(ConfigError) as caught:
+        gym.make("needbench/Menu-v0", **kwargs)
+    assert caught.value.path == path and allowed in str(caught.value)
