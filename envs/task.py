@@ -86,6 +86,7 @@ from needbench.envs.engine import (
     refresh,
 )
 from needbench.envs.errors import ActionError, ConfigError, check_choice
+from needbench.envs.needs import Coupling
 from needbench.envs.physiology import BodyState, Physiology
 from needbench.envs.presets import preset as load_preset
 from needbench.envs.rewards import RewardChannel
@@ -222,6 +223,30 @@ class TaskConfig:
 COMMON_PARAMETERS = tuple(TaskConfig.__dataclass_fields__)
 
 
+def _check_common_types(values: Mapping[str, Any]) -> None:
+    """The common keywords' kinds, checked before anything reads them."""
+    for key in ("preset", "drive", "reward", "on_lethal", "observation"):
+        if key in values and not isinstance(values[key], str):
+            raise ConfigError(key, values[key], "a name (a string)")
+    needs = values.get("needs")
+    if needs is not None and (isinstance(needs, (str, bytes)) or not isinstance(
+            needs, (list, tuple)) or not all(isinstance(name, str) for name in needs)):
+        raise ConfigError("needs", needs, "a list of need names, or None for the task's own")
+    overrides = values.get("need_overrides", {})
+    if not isinstance(overrides, Mapping) or not all(
+            isinstance(changes, Mapping) for changes in overrides.values()):
+        raise ConfigError("need_overrides", overrides, "a mapping {need: {field: value}}")
+    if not isinstance(values.get("drive_params", {}), Mapping):
+        raise ConfigError("drive_params", values["drive_params"],
+                          "a mapping {parameter: value}")
+    couplings = values.get("couplings")
+    if couplings is not None and (isinstance(couplings, (str, bytes, Mapping))
+                                  or not isinstance(couplings, (list, tuple))
+                                  or not all(isinstance(c, Coupling) for c in couplings)):
+        raise ConfigError("couplings", couplings,
+                          "a list of Coupling objects, () for none, or None for the preset's")
+
+
 def split_arguments(world_cls: type[World], defaults: Mapping[str, Any],
                     kwargs: Mapping[str, Any]) -> tuple[TaskConfig, dict[str, Any]]:
     """Split constructor keywords into common and world parts; reject unknown ones."""
@@ -233,6 +258,7 @@ def split_arguments(world_cls: type[World], defaults: Mapping[str, Any],
             raise ConfigError(key, kwargs[key], "a keyword among " + ", ".join(sorted(allowed))
                               + hint)
     merged = {**defaults, **kwargs}
+    _check_common_types(merged)
     common = {k: v for k, v in merged.items() if k in COMMON_PARAMETERS}
     world = {**world_cls.parameters, **{k: v for k, v in merged.items()
                                         if k in world_cls.parameters}}
@@ -452,7 +478,11 @@ class TaskCore:
     def validate_actions(self, actions: Any, space: spaces.Space) -> np.ndarray:
         """Check a batch of actions against the batched action space (compiled checks)."""
         single = self.world.action_space
-        arr = np.asarray(actions)
+        try:
+            arr = np.asarray(actions)
+        except (TypeError, ValueError) as error:  # ragged or odd nested sequences
+            raise ActionError(f"actions {actions!r} are not an array of shape {space.shape}") \
+                from error
         if isinstance(space, spaces.Box):
             if arr.shape != space.shape:
                 raise ActionError(f"actions of shape {arr.shape} given; expected {space.shape}")
@@ -531,9 +561,14 @@ class NeedEnv(gym.Env):
                 self._action[0] = action
                 return self._action
             raise ActionError(f"action {action!r} is not one integer in {space}")
-        if np.shape(action) != space.shape:
-            raise ActionError(f"action of shape {np.shape(action)} given; expected {space.shape}")
-        return self.core.validate_actions(np.asarray(action)[None], self._batched_actions)
+        try:
+            action = np.asarray(action)
+        except (TypeError, ValueError) as error:  # ragged or odd nested sequences
+            raise ActionError(f"action {action!r} is not an array of shape {space.shape}") \
+                from error
+        if action.shape != space.shape:
+            raise ActionError(f"action of shape {action.shape} given; expected {space.shape}")
+        return self.core.validate_actions(action[None], self._batched_actions)
 
     def _observation(self):
         obs = self.core.observation()

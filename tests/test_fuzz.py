@@ -156,14 +156,12 @@ def test_any_need_declaration_is_a_need_or_raises_config_error(values):
 
 SALT = Need("salt", unit="mmol/L", set_point=140.0, band=5.0, lethal_low=115.0,
             lethal_high=165.0, initial_low=138.0, initial_high=142.0, drain=0.2)
-# Keywords the tasks check themselves, whatever their type.
+# Keywords the tasks check themselves, whatever their type (the last six once
+# failed with a raw TypeError or AttributeError: FOUND_TASK_GAPS).
 TASK_KEYWORDS = ("max_steps", "task_weight", "drive_weight", "lethal_penalty", "interoception",
                  "sensory_bias", "on_lethal", "reward", "extra_needs", "observation",
-                 "no_such_keyword")
-# Keywords a task given a value of the wrong type fails on with a raw TypeError or
-# AttributeError (KNOWN_TASK_GAPS); the harness turns those into a SuiteError (below).
-UNCHECKED_KEYWORDS = ("drive", "preset", "needs", "need_overrides", "couplings",
-                      "drive_params")
+                 "no_such_keyword", "drive", "preset", "needs", "need_overrides", "couplings",
+                 "drive_params")
 KEYWORD_VALUES = st.one_of(SCALARS, st.lists(SCALARS, max_size=3),
                            st.dictionaries(st.sampled_from(["energy", "water", "x"]),
                                            st.dictionaries(st.sampled_from(["drain", "band"]),
@@ -191,7 +189,7 @@ def test_any_task_keywords_make_a_task_or_raise_config_error(task_id, kwargs):
 
 @settings(max_examples=KEYWORD_EXAMPLES, **FAST)
 @given(st.sampled_from(TASK_IDS),
-       st.dictionaries(st.sampled_from(TASK_KEYWORDS + UNCHECKED_KEYWORDS), KEYWORD_VALUES,
+       st.dictionaries(st.sampled_from(TASK_KEYWORDS), KEYWORD_VALUES,
                        min_size=1, max_size=3))
 def test_any_task_keywords_in_a_suite_are_valid_or_a_suite_error(task_id, kwargs):
     # Source of truth for the harness: load_suite checks each task with its keywords.
@@ -215,9 +213,8 @@ def _plain(value):
     return value
 
 
-# Raw errors the fuzzing found in envs/ (not edited in this change): each case is a
-# strict xfail, so that the fix there turns it into a failure to remove from this list.
-KNOWN_TASK_GAPS = [
+# Raw errors the fuzzing once found in envs/, each now a ConfigError.
+FOUND_TASK_GAPS = [
     ("needbench/Menu-v0", {"drive": []}),
     ("needbench/Menu-v0", {"preset": []}),
     ("needbench/Menu-v0", {"needs": 0}),
@@ -227,9 +224,8 @@ KNOWN_TASK_GAPS = [
 ]
 
 
-@pytest.mark.xfail(strict=True, reason="envs/ does not check this keyword's type yet")
-@pytest.mark.parametrize("task_id, kwargs", KNOWN_TASK_GAPS)
-def test_known_gaps_in_task_keyword_checks(task_id, kwargs):
+@pytest.mark.parametrize("task_id, kwargs", FOUND_TASK_GAPS)
+def test_wrongly_typed_common_keywords_are_config_errors(task_id, kwargs):
     with pytest.raises(ConfigError):
         gym.make(task_id, **kwargs)
 
@@ -269,9 +265,8 @@ def test_any_action_steps_or_raises_action_error(envs, task_id, action):
     assert env.observation_space.contains(observation) and not math.isnan(reward)
 
 
-@pytest.mark.xfail(strict=True, reason="envs/ turns a ragged nested list into an array raw")
-def test_known_gap_a_ragged_action_list(envs):
-    # Found by the fuzzing: NumPy's own ValueError, not ActionError.
+def test_a_ragged_action_list_is_an_action_error(envs):
+    # Found by the fuzzing: NumPy's own ValueError once came through.
     env = envs["needbench/Arena-v0"]
     env.reset(seed=0)
     with pytest.raises(ActionError):
