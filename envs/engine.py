@@ -36,7 +36,8 @@ USES_AMBIENT, HAS_PERCEIVED = 28, 29  # bool (1,): which world outputs are read
 KEYS, COUNTERS = 30, 31  # the copies' random streams
 SCRATCH = 32  # (3, K) work rows
 LEVEL_BEFORE, SET_POINT_BEFORE = 33, 34  # (B, K) the body before the step
-ENGINE_SIZE = 35
+FAULT = 35  # int64 (2,): copy and need of the first non-finite level of a step, or -1
+ENGINE_SIZE = 36
 # Entries of OPTIONS.
 MAX_STEPS, DEVIATION_LIMIT, WORLD_OFFSET = 0, 1, 2
 
@@ -83,6 +84,14 @@ def settle_all(engine):
                    engine[AMBIENT], engine[FORCING], engine[USES_AMBIENT][0],
                    engine[COEFFICIENTS], engine[COUPLING], engine[COUPLING_BELOW],
                    engine[BODY_FLAGS], engine[KEYS], engine[COUNTERS], scratch[0:2])
+    # A level that is not a finite number means the declared dynamics broke down
+    # (an overflow, say): the shell reports the first one, naming the need.
+    fault = engine[FAULT]
+    fault[0] = fault[1] = -1
+    for b in range(level.shape[0]):
+        for k in range(level.shape[1]):
+            if fault[0] < 0 and not math.isfinite(level[b, k]):
+                fault[0], fault[1] = b, k
     settle_batch(before, set_point_before, level, set_point, engine[INTAKE], engine[PERCEIVED],
                  engine[HAS_PERCEIVED][0], engine[TASK], engine[DRIVE], engine[COEFFICIENTS],
                  engine[CHANNEL], engine[BIAS], engine[DRIVE_TABLE], engine[DRIVE_EXPONENTS],

@@ -61,6 +61,7 @@ from needbench.envs.engine import (
     DRIVE_EXPONENTS,
     DRIVE_TABLE,
     ENGINE_SIZE,
+    FAULT,
     FORCING,
     GUT,
     HAS_PERCEIVED,
@@ -321,7 +322,8 @@ class TaskCore:
                 (TRUNCATED, (B,), np.bool_), (CLOCK, (B,), np.int64),
                 (DEVIATION, (B, k), np.float64), (IN_BAND, (B,), np.bool_),
                 (OBSERVATION, (B, width), np.float32), (SCRATCH, (3, k), np.float64),
-                (LEVEL_BEFORE, (B, k), np.float64), (SET_POINT_BEFORE, (B, k), np.float64)):
+                (LEVEL_BEFORE, (B, k), np.float64), (SET_POINT_BEFORE, (B, k), np.float64),
+                (FAULT, (2,), np.int64)):
             engine[index] = np.zeros(shape, dtype)
         engine[ALIVE][:] = True
         physiology = self.physiology
@@ -417,6 +419,14 @@ class TaskCore:
         """Advance every copy one step (validated actions, batched); results stay in
         the engine's arrays (see :meth:`outcome` and :meth:`info`)."""
         self.world.step_kernel(actions, self._constants, self._state, self._events, self.engine)
+        fault = self.engine[FAULT]
+        if fault[0] >= 0:
+            copy, need = int(fault[0]), int(fault[1])
+            raise ConfigError(
+                f"needs.{self.need_names[need]}", float(self.engine[LEVEL_BEFORE][copy, need]),
+                f"dynamics that keep the level a finite number; at step "
+                f"{int(self.engine[CLOCK][copy])} of copy {copy} it became "
+                f"{self.engine[LEVEL][copy, need]} (the value shown is the level before)")
 
     def observe(self) -> np.ndarray | dict[str, np.ndarray]:
         """(B, D) float32 observations (or a dict of them), computed afresh: levels and

@@ -87,3 +87,19 @@ def test_cache_in_numba_cache_dir_serves_a_read_only_package(tmp_path):
     assert runs[1] == ["1", "0"]  # loaded from it
     assert any(cache.rglob("*.nbi"))
     assert not any(root.rglob("*.nbi"))
+
+
+def test_a_level_that_stops_being_a_number_is_reported_naming_the_need():
+    # A user's need whose dynamics overflow: a huge constant gain, lethal bounds at
+    # the edge of float64. The step where the level becomes infinite raises.
+    from needbench.envs.errors import ConfigError
+    from needbench.envs.needs import Need
+
+    runaway = Need("heat", unit="u", set_point=0.0, band=1.0, lethal_low=-1.7e308,
+                   lethal_high=1.7e308, initial_low=0.0, initial_high=0.0, drain=-1e308)
+    # (The first step's reward is already infinite: the drive cubes 1e308.)
+    env = gym.make("needbench/Menu-v0", extra_needs=(runaway,), disable_env_checker=True)
+    env.reset(seed=0)
+    env.step(0)  # 1e308: still a number
+    with pytest.raises(ConfigError, match=r"needs\.heat.*finite.*step 2 of copy 0"):
+        env.step(0)
