@@ -33,6 +33,7 @@ from needbench.agents.deep import (  # noqa: E402
     resolve_hyperparameters,
     task_kind,
 )
+from needbench.agents.deep.agents import UntrustedFileWarning
 from needbench.agents.random_agent import RandomAgent  # noqa: E402
 from needbench.envs.errors import ConfigError  # noqa: E402
 
@@ -176,7 +177,8 @@ def test_adapter_learns_acts_and_round_trips(name, task, tmp_path):
     agent.save(path)
     header, arrays = read_agent_file(path)  # np.load(allow_pickle=False) inside
     assert header["agent"] == name and arrays["state/sb3_model"].dtype == np.uint8
-    loaded = AGENTS[name].load(path)
+    with pytest.warns(UntrustedFileWarning, match="trust"):  # an SB3 zip holds pickles
+        loaded = AGENTS[name].load(path)
     np.testing.assert_array_equal(loaded.act(observations), actions)
     assert loaded.hyperparameters == agent.hyperparameters
 
@@ -324,7 +326,8 @@ def test_normalisation_is_used_by_act_saved_and_continued(tmp_path):
     _, arrays = read_agent_file(path)
     assert {"state/normalisation/observation_mean", "state/normalisation/return_variance"} \
         <= set(arrays)
-    loaded = PPOAgent.load(path)
+    with pytest.warns(UntrustedFileWarning):
+        loaded = PPOAgent.load(path)
     np.testing.assert_array_equal(loaded.act(observations), agent.act(observations))
     assert loaded.resolved_hyperparameters == agent.resolved_hyperparameters
     for which in ("observation_statistics", "return_statistics"):

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import io
+import warnings
 from collections.abc import Mapping
 from typing import Any, ClassVar
 
@@ -61,6 +62,10 @@ def _set_torch_threads(threads: int) -> None:
 
     if torch.get_num_threads() != threads:
         torch.set_num_threads(threads)
+
+
+class UntrustedFileWarning(UserWarning):
+    """Loading this file runs code stored in it (pickled objects)."""
 
 
 class DeepAgent(Agent):
@@ -196,6 +201,9 @@ class DeepAgent(Agent):
         if "sb3_model" not in arrays:
             raise ConfigError("state", sorted(arrays), "an array 'sb3_model' (the SB3 zip)")
         _set_torch_threads(self.hyperparameters.torch_threads)
+        warnings.warn("loading a Stable-Baselines3 model runs code stored in the file (SB3 "
+                      "models hold pickled objects): load only agent files you trust",
+                      UntrustedFileWarning, stacklevel=3)
         data = io.BytesIO(np.asarray(arrays["sb3_model"], dtype=np.uint8).tobytes())
         self.model = self._algorithm_class().load(data, device="cpu")
         resolved = meta.get("resolved_hyperparameters")
