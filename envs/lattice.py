@@ -97,8 +97,12 @@ def lattice_model(core, resolution: float = 0.25) -> FiniteModel:
     batch = start.shape[0]
     before = BodyState(start, np.zeros_like(start), np.broadcast_to(body.set_point, start.shape))
     moved = body.transition(before, intake=intake, activity=np.zeros(batch))
+    # A world may pay a palatability T per (item, outcome) (Lure): the same in every state.
+    palatability = model.get("palatability")
+    palatability = None if palatability is None else np.tile(
+        np.asarray(palatability, np.float64).reshape(-1), n_states)
     outcome = core.reward_channel.outcome(body, core.drive, before, moved, intake=intake,
-                                          task=np.zeros(batch))
+                                          task=np.zeros(batch), palatability=palatability)
     after = outcome.body
     # Under "penalise" the episode goes on from the held level: nothing dies.
     alive = outcome.alive | (core.reward_channel.on_lethal == "penalise")

@@ -149,7 +149,7 @@ def test_arena_velocity_points_at_the_nearest_source():
 BEATS_RANDOM = [
     ("needbench/Menu-v0", 0.5),
     ("needbench/Gamble-v0", 0.5),
-    ("needbench/Lure-v0", 0.5),
+    ("needbench/Lure-v1", 0.5),
     ("needbench/Forage-v0", 0.5),
     ("needbench/Arena-v0", 0.5),
     ("needbench/ForageWide-v0", 0.15),
