@@ -75,11 +75,15 @@ def lattice_model(core, resolution: float = 0.25) -> FiniteModel:
     body, world = core.physiology, core.world
     if not hasattr(world, "model"):
         raise ConfigError("task", type(world).__name__, "an outcome task whose world has model()")
+    model = world.model()
+    if not model.get("stationary", True):  # Drift's mean yields, Forewarn without weather
+        raise ConfigError("task", type(world).__name__,
+                          "an outcome task whose model is the step's whole outcome "
+                          "(world.model() not marked stationary=False)")
     if np.any(body.delayed) or body.noisy or body.adapts:
         raise ConfigError("needs", body.names,
                           "needs with instant uptake, no noise and fixed set points "
                           "(need_overrides uptake_rate=inf, noise=0, adaptation_rate=0)")
-    model = world.model()
     probabilities, effects = model["probabilities"], model["effects"]  # (A, O), (A, O, K)
     n_actions, n_outcomes, k = effects.shape
 
