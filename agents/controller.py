@@ -268,15 +268,15 @@ class ShelterRule(OutcomeRule):
                    meta["take_off_at"])
 
 
-class WorkRule:
+class WorkRule(OutcomeRule):
     """Shift: work (the best-paid action) only while every need is in its comfort band;
     otherwise the one-step drive-greedy choice among the unpaid actions.
 
     Args:
         set_point, band: (K,) in need units.
         drive: the task's drive object.
-        intake: (A, K) what each action delivers, in need units (counted in
-            full at once, as the outcome rule does).
+        intake: (A, K) what each action delivers, in need units: a sure outcome
+            per action, counted in full at once as in the outcome rule.
         task_reward: (A,) the pay of each action.
     """
 
@@ -284,15 +284,12 @@ class WorkRule:
 
     def __init__(self, set_point: np.ndarray, band: np.ndarray, drive: Drive,
                  intake: np.ndarray, task_reward: np.ndarray):
-        self.set_point = np.asarray(set_point, dtype=np.float64)
-        self.band = np.asarray(band, dtype=np.float64)
-        self.drive = drive
-        self.intake = np.asarray(intake, dtype=np.float64)
+        intake = np.asarray(intake, dtype=np.float64)
+        super().__init__(set_point, band, drive, np.ones((len(intake), 1)), intake[:, None, :])
         self.task_reward = np.asarray(task_reward, dtype=np.float64)
-        self.num_needs = len(self.set_point)
         self.work = int(np.argmax(self.task_reward))
-        self.unpaid = np.flatnonzero(self.task_reward <= 0.0)
-        if self.task_reward[self.work] <= 0.0 or len(self.unpaid) == 0:
+        self.paid = self.task_reward > 0.0
+        if not self.paid.any() or self.paid.all():
             raise ConfigError("world.model().task_reward", self.task_reward.tolist(),
                               "at least one paid (> 0) and one unpaid (<= 0) action")
 
@@ -303,15 +300,14 @@ class WorkRule:
                    model["task_reward"])
 
     def act(self, observations: np.ndarray, deviation: np.ndarray) -> np.ndarray:
-        level = self.set_point + deviation * self.band  # (B, K)
-        after = level[:, None, :] + self.intake[None, self.unpaid]  # (B, U, K)
-        tend = self.unpaid[np.argmin(self.drive(after, self.set_point), axis=1)]
+        expected = self.expected_drive(deviation)
+        expected[:, self.paid] = np.inf  # tending is done by the unpaid actions
         in_band = np.all(np.abs(deviation) <= 1.0, axis=1)
-        return np.where(in_band, self.work, tend)
+        return np.where(in_band, self.work, np.argmin(expected, axis=1))
 
     def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         return ({"drive": self.drive.params()},
-                {"set_point": self.set_point, "band": self.band, "intake": self.intake,
+                {"set_point": self.set_point, "band": self.band, "intake": self.effects[:, 0],
                  "task_reward": self.task_reward})
 
     @classmethod

@@ -2,8 +2,9 @@
 
 A task family's kernels (in ``envs/tasks/<family>.py``) loop over copies to
 let the world act (intakes, activity, ambient conditions, forcing, payoff,
-the perceived outcome, the palatability of what was consumed), then call :func:`settle_all`, which advances every
-body, decides survival, scores drive and reward and sets the episode flags;
+the perceived outcome, the palatability of what was consumed), then call
+:func:`settle_all`, which advances every body, decides survival, scores drive
+and reward and sets the episode flags;
 then they write the observation, internal part by :func:`observe_internal`.
 
 All the arrays a kernel needs travel in one tuple, the *engine*, built by

@@ -135,8 +135,8 @@ def _compute(level_before, set_point_before, level_after, set_point_after, intak
     for b in range(level_before.shape[0]):
         total[b], internal[b], drive_after[b] = reward_parts(
             b, level_before, set_point_before, level_after, set_point_after, intake, perceived,
-            has_perceived, alive[b], task[b], palatability[b], drive_before[b], channel, bias, drive_table,
-            drive_exponents, work)
+            has_perceived, alive[b], task[b], palatability[b], drive_before[b], channel, bias,
+            drive_table, drive_exponents, work)
 
 
 class Outcome(NamedTuple):
@@ -277,7 +277,7 @@ class RewardChannel:
         d_before = drive(level, set_point)
         d_after = d_before.copy()
         settle_batch(level, set_point, held, after_set_point, intake, perceived, has_perceived,
-                     task, palatability, d_after, physiology.coefficients, channel, bias, drive.table(k),
-                     drive.exponents, np.empty((1, k)), total, internal, alive)
+                     task, palatability, d_after, physiology.coefficients, channel, bias,
+                     drive.table(k), drive.exponents, np.empty((1, k)), total, internal, alive)
         return Outcome(total, internal, d_before, d_after, alive,
                        BodyState(held, np.asarray(after.gut), after_set_point))

@@ -128,7 +128,7 @@ class World:
       and a fresh world, then its observation;
     * ``step_kernel(actions, constants, state, events, engine)``: the world
       acts for every copy (writing the engine's intake, activity, ambient,
-      forcing, task and perceived rows and its own events), then
+      forcing, task, perceived and palatability rows and its own events), then
       :func:`~needbench.envs.engine.settle_all`, then the observations;
     * ``observe_kernel(constants, state, engine)``: the observations alone.
 

@@ -165,8 +165,8 @@ def core_stepper(copies: int) -> Callable[[], None]:
                        body.coefficients, body.coupling, body.coupling_below, body.flags,
                        streams.keys, streams.counter, scratch)
         settle_batch(before, set_point_before, level, set_point, intake, zeros, False, task,
-                     palatability, drives, body.coefficients, channel, bias, drive.table(k), drive.exponents,
-                     work, reward, internal, alive)
+                     palatability, drives, body.coefficients, channel, bias, drive.table(k),
+                     drive.exponents, work, reward, internal, alive)
 
     return step
 
