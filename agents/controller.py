@@ -7,14 +7,28 @@ observation alone.
 
 * Outcome tasks (worlds with a known outcome model, ``world.model()`` giving
   ``probabilities`` (I, O) and ``effects`` (I, O, K) per item, as Menu,
-  Gamble and Lure do): one-step drive-greedy. For every item it scores the
+  Gamble, Lure, Drift and Forewarn do): one-step drive-greedy. For every item it scores the
   expected drive after the step, sum_o p_io D(h + e_io), with the task's own
   drive object (``env.unwrapped.core.drive``), and takes the item with the
   lowest (ties: the lowest index). The outcome is counted in full at once:
   the controller cannot see the gut, so food still on its way is invisible to
   it; and the passive drift of the step, the same whatever the item, is left
-  out. Lure's perceived outcomes are ignored: the controller acts on the
-  body's true effects.
+  out. Lure's perceived outcomes and palatability are ignored: the
+  controller acts on the body's true effects. Drift's model is the
+  annual-mean one (``world.model()``): the controller does not see the
+  season (hidden by default), so it scores every item at its mean yield and
+  acts on the deviation from the current, adapted set point, which the
+  observation gives.
+* Forewarn (an outcome model with a ``shelter``): the outcome rule over the
+  actions that change the needs (rest, eat, drink), and the oilskin worn
+  reactively: put on once the squall's need is ``shelter_at`` band out on the
+  squall's side, taken off once it is back within ``rest_below`` of its set
+  point (in a long squall it may come off and go on again). The horn is
+  ignored: this is the reactive baseline that anticipation is measured
+  against.
+* Shift (an action model with ``intake`` and ``task_reward``): never work
+  unless every need is in its comfort band; otherwise the one-step
+  drive-greedy choice among the unpaid actions (all of them in the shade).
 * Spatial tasks (Forage, ForageWide, Arena): it heads for the nearest source
   of the most urgent need and stays on it while that need is the most
   urgent. A need's urgency is the part of its deviation its sources can
@@ -44,17 +58,16 @@ and the cells where walls may stand (``world.moves()``,
 ``world.possible_walls()``; pillars are not in the full-view observation, so
 the controller walks round every possible pillar site, unless pillars cannot
 stand); Arena's ``max_speed`` and ``sensing_range``. It
-assumes fixed set points: under set point adaptation (Drift) it would read
-deviations against the moving set point, but no outcome model exists there,
-so such tasks are refused.
+reads deviations against the current set point, so under set point
+adaptation (Drift) it holds the body near where the set point has moved.
 
 Forage's local view (ForageWide) shows only a window: the controller heads for
 the nearest visible source of the most urgent need, avoiding visible walls,
 and when none is in sight it wanders (a random open move, reproducible from
 the ``learn`` seed; the only randomness in this agent).
 
-Tasks with neither a model nor sources (Forewarn, Drift) are refused with a
-ConfigError at ``learn``.
+Every needbench task has a rule; other tasks are refused with a ConfigError
+at ``learn``.
 """
 
 from __future__ import annotations
@@ -84,7 +97,8 @@ from needbench.envs.errors import ConfigError, check_non_negative
 RAISES, LOWERS, RESTORES = 1, -1, 0
 
 SUPPORTED = ("a task with a known outcome model (world.model() with 'probabilities' and "
-             "'effects', e.g. Menu, Gamble, Lure) or a spatial task with sources "
+             "'effects', e.g. Menu, Gamble, Lure, Drift, Forewarn), an action model with "
+             "'intake' and 'task_reward' (Shift) or a spatial task with sources "
              "(Forage, ForageWide, Arena)")
 
 
@@ -97,10 +111,14 @@ class ControllerHyperparameters:
     #: while that need is still being corrected (classical switching
     #: hysteresis; without it the agent dithers between two sources).
     hysteresis: float = 0.5
+    #: Band units: in Forewarn, put the oilskin on once the squall's need is
+    #: this far from its set point on the squall's side (it is felt, not heard).
+    shelter_at: float = 0.5
 
     def __post_init__(self):
         check_non_negative("setpoint-controller.rest_below", self.rest_below)
         check_non_negative("setpoint-controller.hysteresis", self.hysteresis)
+        check_non_negative("setpoint-controller.shelter_at", self.shelter_at)
 
 
 def urgency(deviation: np.ndarray, direction: np.ndarray) -> np.ndarray:
@@ -180,13 +198,122 @@ class OutcomeRule:
     @classmethod
     def restore(cls, settings: ControllerHyperparameters, meta: Mapping[str, Any],
                 arrays: Mapping[str, np.ndarray]) -> OutcomeRule:
-        params = dict(meta["drive"])
-        family = params.pop("family")
-        scale = params.pop("scale")
-        drive = make_drive(family, scale=np.asarray(scale), num_needs=len(arrays["set_point"]),
-                           **params)
-        return cls(arrays["set_point"], arrays["band"], drive, arrays["probabilities"],
-                   arrays["effects"])
+        return cls(arrays["set_point"], arrays["band"], _saved_drive(meta, arrays),
+                   arrays["probabilities"], arrays["effects"])
+
+
+def _saved_drive(meta: Mapping[str, Any], arrays: Mapping[str, np.ndarray]) -> Drive:
+    params = dict(meta["drive"])
+    family = params.pop("family")
+    scale = params.pop("scale")
+    return make_drive(family, scale=np.asarray(scale), num_needs=len(arrays["set_point"]),
+                      **params)
+
+
+class ShelterRule(OutcomeRule):
+    """Forewarn: the outcome rule over the other actions, and a shelter worn reactively.
+
+    Args (beyond :class:`OutcomeRule`'s):
+        need: index of the need the disturbance pushes; ``direction`` (-1 or
+            +1): the side it pushes it to.
+        put_on, take_off: action indices of the shelter.
+        worn_column: observation column that is 1 while the shelter is worn.
+        shelter_at: band units on the disturbance's side that put it on.
+        take_off_at: band units on that side at or below which it comes off
+            (below ``shelter_at``: the gap is the switching hysteresis).
+    """
+
+    kind = "shelter"
+
+    def __init__(self, set_point, band, drive, probabilities, effects, need: int,
+                 direction: int, put_on: int, take_off: int, worn_column: int,
+                 shelter_at: float, take_off_at: float):
+        super().__init__(set_point, band, drive, probabilities, effects)
+        self.need, self.direction = int(need), int(direction)
+        self.put_on, self.take_off = int(put_on), int(take_off)
+        self.worn_column, self.shelter_at = int(worn_column), float(shelter_at)
+        self.take_off_at = min(float(take_off_at), self.shelter_at)
+
+    @classmethod
+    def from_core(cls, core: Any, settings: ControllerHyperparameters) -> ShelterRule:
+        model = core.world.model()
+        shelter = model["shelter"]
+        k = core.physiology.num_needs
+        return cls(core.physiology.set_point, core.band, core.drive, model["probabilities"],
+                   model["effects"], core.physiology.index[shelter["need"]],
+                   shelter["direction"], shelter["put_on"], shelter["take_off"],
+                   k + core.world.feature_index(shelter["worn_feature"]), settings.shelter_at,
+                   settings.rest_below)
+
+    def act(self, observations: np.ndarray, deviation: np.ndarray) -> np.ndarray:
+        expected = self.expected_drive(deviation)
+        expected[:, [self.put_on, self.take_off]] = np.inf  # the shelter is decided below
+        action = np.argmin(expected, axis=1)
+        worn = observations[:, self.worn_column] > 0.5
+        pushed = self.direction * deviation[:, self.need]  # > 0: on the disturbance's side
+        action = np.where(~worn & (pushed >= self.shelter_at), self.put_on, action)
+        return np.where(worn & (pushed <= self.take_off_at), self.take_off, action)
+
+    def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        meta, arrays = super().state()
+        return ({**meta, "need": self.need, "direction": self.direction, "put_on": self.put_on,
+                 "take_off": self.take_off, "worn_column": self.worn_column,
+                 "shelter_at": self.shelter_at, "take_off_at": self.take_off_at}, arrays)
+
+    @classmethod
+    def restore(cls, settings, meta, arrays) -> ShelterRule:
+        return cls(arrays["set_point"], arrays["band"], _saved_drive(meta, arrays),
+                   arrays["probabilities"], arrays["effects"], meta["need"], meta["direction"],
+                   meta["put_on"], meta["take_off"], meta["worn_column"], meta["shelter_at"],
+                   meta["take_off_at"])
+
+
+class WorkRule(OutcomeRule):
+    """Shift: work (the best-paid action) only while every need is in its comfort band;
+    otherwise the one-step drive-greedy choice among the unpaid actions.
+
+    Args:
+        set_point, band: (K,) in need units.
+        drive: the task's drive object.
+        intake: (A, K) what each action delivers, in need units: a sure outcome
+            per action, counted in full at once as in the outcome rule.
+        task_reward: (A,) the pay of each action.
+    """
+
+    kind = "work"
+
+    def __init__(self, set_point: np.ndarray, band: np.ndarray, drive: Drive,
+                 intake: np.ndarray, task_reward: np.ndarray):
+        intake = np.asarray(intake, dtype=np.float64)
+        super().__init__(set_point, band, drive, np.ones((len(intake), 1)), intake[:, None, :])
+        self.task_reward = np.asarray(task_reward, dtype=np.float64)
+        self.work = int(np.argmax(self.task_reward))
+        self.paid = self.task_reward > 0.0
+        if not self.paid.any() or self.paid.all():
+            raise ConfigError("world.model().task_reward", self.task_reward.tolist(),
+                              "at least one paid (> 0) and one unpaid (<= 0) action")
+
+    @classmethod
+    def from_core(cls, core: Any) -> WorkRule:
+        model = core.world.model()
+        return cls(core.physiology.set_point, core.band, core.drive, model["intake"],
+                   model["task_reward"])
+
+    def act(self, observations: np.ndarray, deviation: np.ndarray) -> np.ndarray:
+        expected = self.expected_drive(deviation)
+        expected[:, self.paid] = np.inf  # tending is done by the unpaid actions
+        in_band = np.all(np.abs(deviation) <= 1.0, axis=1)
+        return np.where(in_band, self.work, np.argmin(expected, axis=1))
+
+    def state(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        return ({"drive": self.drive.params()},
+                {"set_point": self.set_point, "band": self.band, "intake": self.effects[:, 0],
+                 "task_reward": self.task_reward})
+
+    @classmethod
+    def restore(cls, settings, meta, arrays) -> WorkRule:
+        return cls(arrays["set_point"], arrays["band"], _saved_drive(meta, arrays),
+                   arrays["intake"], arrays["task_reward"])
 
 
 # --- grid worlds (Forage) -----------------------------------------------------------------
@@ -445,7 +572,8 @@ class PlaneRule:
                    meta["max_speed"])
 
 
-RULES = {rule.kind: rule for rule in (OutcomeRule, GridRule, WindowRule, PlaneRule)}
+RULES = {rule.kind: rule for rule in (OutcomeRule, ShelterRule, WorkRule, GridRule,
+                                      WindowRule, PlaneRule)}
 
 
 def rule_for(core: Any, action_space: spaces.Space, settings: ControllerHyperparameters,
@@ -460,7 +588,11 @@ def rule_for(core: Any, action_space: spaces.Space, settings: ControllerHyperpar
                 raise ConfigError("world.model().probabilities",
                                   np.shape(table["probabilities"]),
                                   f"one row per action ({action_space.n} rows)")
+            if "shelter" in table:
+                return ShelterRule.from_core(core, settings)
             return OutcomeRule.from_core(core)
+        if {"intake", "task_reward"} <= set(table):
+            return WorkRule.from_core(core)
     from needbench.envs.tasks.arena import ArenaWorld
     from needbench.envs.tasks.forage import ForageWorld
 
@@ -491,7 +623,7 @@ class SetpointController(Agent):
     def __init__(self, observation_space: spaces.Space, action_space: spaces.Space,
                  **hyperparameters: Any):
         super().__init__(observation_space, action_space, **hyperparameters)
-        self.rule: OutcomeRule | GridRule | WindowRule | PlaneRule | None = None
+        self.rule: OutcomeRule | WorkRule | GridRule | WindowRule | PlaneRule | None = None
 
     def learn(self, env: gym.Env | VectorEnv, total_steps: int = 0, seed: int = 0,
               logger: Logger | None = None) -> SetpointController:

@@ -80,10 +80,18 @@ def resolve_task(name: str) -> str:
 
 
 def builtin_suites() -> dict[str, Path]:
-    """Built-in suite names and their files."""
+    """Built-in suite names and their files; a suite in a subfolder is named
+    ``folder/name`` (``phenomena/overconsumption``)."""
     folder = importlib.resources.files("needbench.benchmarks.suites")
-    return {Path(entry.name).stem: Path(str(entry)) for entry in folder.iterdir()
-            if entry.name.endswith(".toml")}
+    suites = {}
+    for entry in folder.iterdir():
+        if entry.name.endswith(".toml"):
+            suites[Path(entry.name).stem] = Path(str(entry))
+        elif entry.is_dir() and not entry.name.startswith(("_", ".")):
+            for inner in entry.iterdir():
+                if inner.name.endswith(".toml"):
+                    suites[f"{entry.name}/{Path(inner.name).stem}"] = Path(str(inner))
+    return suites
 
 
 def resolve_suite(name: str) -> Path:

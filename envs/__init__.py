@@ -27,7 +27,7 @@ TASKS: tuple[tuple[str, str, str, dict], ...] = (
     ("needbench/Forewarn-v0", "forewarn", "Forewarn", {}),
     ("needbench/Drift-v0", "drift", "Drift", {}),
     ("needbench/Gamble-v0", "gamble", "Gamble", {}),
-    ("needbench/Lure-v0", "lure", "Lure", {}),
+    ("needbench/Lure-v1", "lure", "Lure", {}),
     ("needbench/Shift-v0", "shift", "Shift", {}),
 )
 

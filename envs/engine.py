@@ -2,8 +2,9 @@
 
 A task family's kernels (in ``envs/tasks/<family>.py``) loop over copies to
 let the world act (intakes, activity, ambient conditions, forcing, payoff,
-the perceived outcome), then call :func:`settle_all`, which advances every
-body, decides survival, scores drive and reward and sets the episode flags;
+the perceived outcome, the palatability of what was consumed), then call
+:func:`settle_all`, which advances every body, decides survival, scores drive
+and reward and sets the episode flags;
 then they write the observation, internal part by :func:`observe_internal`.
 
 All the arrays a kernel needs travel in one tuple, the *engine*, built by
@@ -37,7 +38,8 @@ KEYS, COUNTERS = 30, 31  # the copies' random streams
 SCRATCH = 32  # (3, K) work rows
 LEVEL_BEFORE, SET_POINT_BEFORE = 33, 34  # (B, K) the body before the step
 FAULT = 35  # int64 (2,): copy and need of the first non-finite level of a step, or -1
-ENGINE_SIZE = 36
+PALATABILITY = 36  # (B,) T_t of what the world served each copy this step (reward units)
+ENGINE_SIZE = 37
 # Entries of OPTIONS.
 MAX_STEPS, DEVIATION_LIMIT, WORLD_OFFSET = 0, 1, 2
 
@@ -50,6 +52,7 @@ def clear_effects(engine, b):
     task, perceived = engine[TASK], engine[PERCEIVED]
     activity[b] = 0.0
     task[b] = 0.0
+    engine[PALATABILITY][b] = 0.0
     for k in range(intake.shape[1]):
         intake[b, k] = 0.0
         ambient[b, k] = 0.0
@@ -93,7 +96,8 @@ def settle_all(engine):
             if fault[0] < 0 and not math.isfinite(level[b, k]):
                 fault[0], fault[1] = b, k
     settle_batch(before, set_point_before, level, set_point, engine[INTAKE], engine[PERCEIVED],
-                 engine[HAS_PERCEIVED][0], engine[TASK], engine[DRIVE], engine[COEFFICIENTS],
+                 engine[HAS_PERCEIVED][0], engine[TASK], engine[PALATABILITY], engine[DRIVE],
+                 engine[COEFFICIENTS],
                  engine[CHANNEL], engine[BIAS], engine[DRIVE_TABLE], engine[DRIVE_EXPONENTS],
                  scratch[2:3], engine[REWARD], engine[INTERNAL], engine[ALIVE])
     max_steps = engine[OPTIONS][MAX_STEPS]

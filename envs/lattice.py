@@ -75,11 +75,15 @@ def lattice_model(core, resolution: float = 0.25) -> FiniteModel:
     body, world = core.physiology, core.world
     if not hasattr(world, "model"):
         raise ConfigError("task", type(world).__name__, "an outcome task whose world has model()")
+    model = world.model()
+    if not model.get("stationary", True):  # Drift's mean yields, Forewarn without weather
+        raise ConfigError("task", type(world).__name__,
+                          "an outcome task whose model is the step's whole outcome "
+                          "(world.model() not marked stationary=False)")
     if np.any(body.delayed) or body.noisy or body.adapts:
         raise ConfigError("needs", body.names,
                           "needs with instant uptake, no noise and fixed set points "
                           "(need_overrides uptake_rate=inf, noise=0, adaptation_rate=0)")
-    model = world.model()
     probabilities, effects = model["probabilities"], model["effects"]  # (A, O), (A, O, K)
     n_actions, n_outcomes, k = effects.shape
 
@@ -97,8 +101,12 @@ def lattice_model(core, resolution: float = 0.25) -> FiniteModel:
     batch = start.shape[0]
     before = BodyState(start, np.zeros_like(start), np.broadcast_to(body.set_point, start.shape))
     moved = body.transition(before, intake=intake, activity=np.zeros(batch))
+    # A world may pay a palatability T per (item, outcome) (Lure): the same in every state.
+    palatability = model.get("palatability")
+    palatability = None if palatability is None else np.tile(
+        np.asarray(palatability, np.float64).reshape(-1), n_states)
     outcome = core.reward_channel.outcome(body, core.drive, before, moved, intake=intake,
-                                          task=np.zeros(batch))
+                                          task=np.zeros(batch), palatability=palatability)
     after = outcome.body
     # Under "penalise" the episode goes on from the held level: nothing dies.
     alive = outcome.alive | (core.reward_channel.on_lethal == "penalise")

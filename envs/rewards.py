@@ -12,6 +12,14 @@ Channels (``RewardChannel.kind``):
   while the body changes by the true k. ``bias = 0`` and instant uptake give
   the same reward as ``drive_reduction``.
 
+Palatability: a world may say how palatable the item a copy consumed is, a
+number T_t in reward units (0 for every item of a world that says nothing).
+Every channel adds ``palatability_weight * T_t`` to its internal value, which
+for ``sensory_estimate`` gives the hedonic reward of Keramati & Gutkin (2014),
+r_t = D(h_t) - D(h_t + k_hat_t) + T_t: a hyper-palatable item (T > 0) pays
+beyond what it does for the needs. ``palatability_weight = 0`` switches the
+term off.
+
 Every channel is scaled by ``drive_weight``, and a task's extrinsic reward is
 mixed in with ``task_weight``: r = drive_weight * internal + task_weight * task.
 
@@ -40,7 +48,7 @@ from needbench.envs.physiology import BAND, LETHAL_HIGH, LETHAL_LOW, BodyState, 
 CHANNELS = ("drive_reduction", "negative_drive", "survival", "sensory_estimate")
 ON_LETHAL = ("terminate", "penalise")
 # Entries of a channel's parameter vector.
-KIND, DRIVE_WEIGHT, TASK_WEIGHT, LETHAL_PENALTY, PENALISE = range(5)
+KIND, DRIVE_WEIGHT, TASK_WEIGHT, LETHAL_PENALTY, PENALISE, PALATABILITY_WEIGHT = range(6)
 DRIVE_REDUCTION, NEGATIVE_DRIVE, SURVIVAL, SENSORY_ESTIMATE = range(4)
 
 
@@ -56,11 +64,12 @@ class RewardParts(NamedTuple):
 
 @inline_kernel
 def reward_parts(b, level_before, set_point_before, level_after, set_point_after, intake,
-                 perceived, has_perceived, alive, task, drive_before, channel, bias,
-                 drive_table, drive_exponents, work):
+                 perceived, has_perceived, alive, task, palatability, drive_before, channel,
+                 bias, drive_table, drive_exponents, work):
     """(total, internal, D(h_{t+1})) of copy ``b``; the arrays are (B, K).
 
-    ``perceived`` is the outcome as the agent perceives it when
+    ``palatability`` is the copy's T_t (a number), added to the internal
+    value with the channel's weight. ``perceived`` is the outcome as the agent perceives it when
     ``has_perceived``; otherwise the sensory channel perceives ``intake``
     plus the bias of each consumed need. ``work`` is a (1, K) scratch array.
     """
@@ -81,20 +90,23 @@ def reward_parts(b, level_before, set_point_before, level_after, set_point_after
                 work[0, k] = level_before[b, k] + (intake[b, k] + extra)
         internal = drive_before - drive_of(work, 0, set_point_before, b, drive_table,
                                            drive_exponents)
+    if palatability != 0.0:  # an exact no-op otherwise, so T = 0 changes no bit
+        internal = internal + channel[PALATABILITY_WEIGHT] * palatability
     total = channel[DRIVE_WEIGHT] * internal + channel[TASK_WEIGHT] * task
     return total, internal, drive_after
 
 
 @kernel
 def settle_batch(level_before, set_point_before, level, set_point, intake, perceived,
-                 has_perceived, task, drive, coefficients, channel, bias, drive_table,
+                 has_perceived, task, palatability, drive, coefficients, channel, bias, drive_table,
                  drive_exponents, work, reward, internal, alive):
     """The outcome of every copy's step once its body has moved to ``level``.
 
     Decides survival, holds the level inside its bounds under ``penalise``
     (in place), scores the reward and subtracts the lethal penalty. ``drive``
     (B,) holds D(h_t) on entry and D(h_{t+1}) on return; ``reward``,
-    ``internal``, ``alive`` (B,) are written.
+    ``internal``, ``alive`` (B,) are written; ``task`` and ``palatability``
+    (B,) are the world's payoff and the T_t of what each copy consumed.
     """
     penalise = channel[PENALISE] != 0.0
     for b in range(level.shape[0]):
@@ -106,7 +118,7 @@ def settle_batch(level_before, set_point_before, level, set_point, intake, perce
                                   coefficients[LETHAL_HIGH, k] - margin)
         total, value, drive_after = reward_parts(
             b, level_before, set_point_before, level, set_point, intake, perceived,
-            has_perceived, lives, task[b], drive[b], channel, bias, drive_table,
+            has_perceived, lives, task[b], palatability[b], drive[b], channel, bias, drive_table,
             drive_exponents, work)
         if not lives:
             total = total - channel[LETHAL_PENALTY]
@@ -118,13 +130,13 @@ def settle_batch(level_before, set_point_before, level, set_point, intake, perce
 
 @kernel
 def _compute(level_before, set_point_before, level_after, set_point_after, intake, perceived,
-             has_perceived, alive, task, drive_before, channel, bias, drive_table,
+             has_perceived, alive, task, palatability, drive_before, channel, bias, drive_table,
              drive_exponents, work, total, internal, drive_after):
     for b in range(level_before.shape[0]):
         total[b], internal[b], drive_after[b] = reward_parts(
             b, level_before, set_point_before, level_after, set_point_after, intake, perceived,
-            has_perceived, alive[b], task[b], drive_before[b], channel, bias, drive_table,
-            drive_exponents, work)
+            has_perceived, alive[b], task[b], palatability[b], drive_before[b], channel, bias,
+            drive_table, drive_exponents, work)
 
 
 class Outcome(NamedTuple):
@@ -152,6 +164,8 @@ class RewardChannel:
         on_lethal: ``"terminate"`` or ``"penalise"`` (see the module docstring).
         lethal_penalty: subtracted from the reward of a step that ends at a
             lethal level (finite, >= 0).
+        palatability_weight: weight of the palatability T_t of the item
+            consumed, added to the internal value (finite; 0 switches it off).
     """
 
     kind: str = "drive_reduction"
@@ -160,12 +174,14 @@ class RewardChannel:
     bias: float | Sequence[float] = field(default=0.0)
     on_lethal: str = "terminate"
     lethal_penalty: float = 0.0
+    palatability_weight: float = 1.0
 
     def __post_init__(self) -> None:
         check_choice("reward.kind", self.kind, CHANNELS)
         check_choice("on_lethal", self.on_lethal, ON_LETHAL)
         check_finite("reward.drive_weight", self.drive_weight)
         check_finite("reward.task_weight", self.task_weight)
+        check_finite("reward.palatability_weight", self.palatability_weight)
         if check_finite("lethal_penalty", self.lethal_penalty) < 0:
             raise ConfigError("lethal_penalty", self.lethal_penalty, "a finite number >= 0")
         try:
@@ -178,16 +194,17 @@ class RewardChannel:
             object.__setattr__(self, "bias", tuple(float(b) for b in bias))
 
     def parameters(self, num_needs: int) -> tuple[np.ndarray, np.ndarray]:
-        """The kernel's (5,) parameter vector and (K,) bias row of this channel."""
+        """The kernel's (6,) parameter vector and (K,) bias row of this channel."""
         bias = np.asarray(self.bias, dtype=np.float64)
         if bias.ndim == 1 and bias.shape[0] != num_needs:
             raise ConfigError("sensory_bias", self.bias,
                               f"one number, or a list of {num_needs} numbers (one per need)")
         vector = np.array([CHANNELS.index(self.kind), self.drive_weight, self.task_weight,
-                           self.lethal_penalty, self.on_lethal == "penalise"], dtype=np.float64)
+                           self.lethal_penalty, self.on_lethal == "penalise",
+                           self.palatability_weight], dtype=np.float64)
         return vector, np.ascontiguousarray(np.broadcast_to(bias, (num_needs,)))
 
-    def _inputs(self, before: BodyState, after_level, intake, task, perceived):
+    def _inputs(self, before: BodyState, after_level, intake, task, perceived, palatability):
         level = np.asarray(before.level, dtype=np.float64)
         batch, k = level.shape
         zeros = np.zeros((batch, k))
@@ -195,8 +212,11 @@ class RewardChannel:
         has_perceived = perceived is not None
         perceived = zeros if perceived is None else np.asarray(perceived, dtype=np.float64)
         task = np.zeros(batch) if task is None else np.asarray(task, dtype=np.float64)
+        palatability = np.zeros(batch) if palatability is None else np.asarray(
+            palatability, dtype=np.float64)
         return (level, np.asarray(before.set_point, np.float64), intake, perceived,
-                has_perceived, np.broadcast_to(task, (batch,)).copy())
+                has_perceived, np.broadcast_to(task, (batch,)).copy(),
+                np.broadcast_to(palatability, (batch,)).copy())
 
     def compute(
         self,
@@ -209,6 +229,7 @@ class RewardChannel:
         task: np.ndarray | None = None,
         perceived: np.ndarray | None = None,
         drive_before: np.ndarray | None = None,
+        palatability: np.ndarray | None = None,
     ) -> RewardParts:
         """One step's reward for B bodies, before any lethal penalty.
 
@@ -222,9 +243,10 @@ class RewardChannel:
                 sensory_estimate; overrides ``intake + bias`` when a task
                 decides per item what is misperceived.
             drive_before: D(h_t) when the caller already has it.
+            palatability: (B,) T_t of what each body consumed; default zeros.
         """
-        level, set_point, intake, perceived, has_perceived, task = self._inputs(
-            before, after.level, intake, task, perceived)
+        level, set_point, intake, perceived, has_perceived, task, palatability = self._inputs(
+            before, after.level, intake, task, perceived, palatability)
         batch, k = level.shape
         d_before = drive(level, set_point) if drive_before is None else np.asarray(
             drive_before, np.float64)
@@ -233,19 +255,20 @@ class RewardChannel:
         total, internal, d_after = np.empty(batch), np.empty(batch), np.empty(batch)
         _compute(level, set_point, np.asarray(after.level, np.float64),
                  np.asarray(np.broadcast_to(after.set_point, (batch, k)), np.float64), intake,
-                 perceived, has_perceived, alive, task, d_before, channel, bias, drive.table(k),
-                 drive.exponents, np.empty((1, k)), total, internal, d_after)
+                 perceived, has_perceived, alive, task, palatability, d_before, channel, bias,
+                 drive.table(k), drive.exponents, np.empty((1, k)), total, internal, d_after)
         return RewardParts(total, internal, task, d_before, d_after)
 
     def outcome(self, physiology, drive: Drive, before: BodyState, after: BodyState, *,
                 intake: np.ndarray | None = None, task: np.ndarray | None = None,
-                perceived: np.ndarray | None = None) -> Outcome:
+                perceived: np.ndarray | None = None,
+                palatability: np.ndarray | None = None) -> Outcome:
         """The whole outcome of a step for B bodies, as a task step assembles it:
         survival, holding at the bounds under ``penalise``, reward and penalty.
 
         ``after`` is the body as the physiology moved it (not yet held)."""
-        level, set_point, intake, perceived, has_perceived, task = self._inputs(
-            before, after.level, intake, task, perceived)
+        level, set_point, intake, perceived, has_perceived, task, palatability = self._inputs(
+            before, after.level, intake, task, perceived, palatability)
         batch, k = level.shape
         held = np.array(after.level, dtype=np.float64)
         after_set_point = np.array(np.broadcast_to(after.set_point, (batch, k)), np.float64)
@@ -254,7 +277,7 @@ class RewardChannel:
         d_before = drive(level, set_point)
         d_after = d_before.copy()
         settle_batch(level, set_point, held, after_set_point, intake, perceived, has_perceived,
-                     task, d_after, physiology.coefficients, channel, bias, drive.table(k),
-                     drive.exponents, np.empty((1, k)), total, internal, alive)
+                     task, palatability, d_after, physiology.coefficients, channel, bias,
+                     drive.table(k), drive.exponents, np.empty((1, k)), total, internal, alive)
         return Outcome(total, internal, d_before, d_after, alive,
                        BodyState(held, np.asarray(after.gut), after_set_point))

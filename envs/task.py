@@ -19,7 +19,7 @@ Common constructor arguments (every task accepts them; a family adds its own):
 * ``drive``: drive family (``homeostatic``, ``quadratic``, ``asymmetric``) and
   ``drive_params``: its parameters. Deviations are scaled by the comfort bands.
 * ``reward``: reward channel kind; ``drive_weight``, ``task_weight``,
-  ``sensory_bias``: see :class:`~needbench.envs.rewards.RewardChannel`.
+  ``sensory_bias``, ``palatability_weight``: see :class:`~needbench.envs.rewards.RewardChannel`.
 * ``max_steps``: time limit (truncation).
 * ``on_lethal``: ``"terminate"`` ends the episode when a need leaves its lethal
   bounds; ``"penalise"`` holds the level at the bound and continues.
@@ -73,6 +73,7 @@ from needbench.envs.engine import (
     LEVEL_BEFORE,
     OBSERVATION,
     OPTIONS,
+    PALATABILITY,
     PERCEIVED,
     REWARD,
     SCRATCH,
@@ -129,7 +130,7 @@ class World:
       and a fresh world, then its observation;
     * ``step_kernel(actions, constants, state, events, engine)``: the world
       acts for every copy (writing the engine's intake, activity, ambient,
-      forcing, task and perceived rows and its own events), then
+      forcing, task, perceived and palatability rows and its own events), then
       :func:`~needbench.envs.engine.settle_all`, then the observations;
     * ``observe_kernel(constants, state, engine)``: the observations alone.
 
@@ -217,6 +218,7 @@ class TaskConfig:
     max_steps: int = 500
     on_lethal: str = "terminate"
     lethal_penalty: float = 0.0
+    palatability_weight: float = 1.0
     interoception: bool = True
     observation: str = "flat"
 
@@ -323,7 +325,7 @@ class TaskCore:
                 (DEVIATION, (B, k), np.float64), (IN_BAND, (B,), np.bool_),
                 (OBSERVATION, (B, width), np.float32), (SCRATCH, (3, k), np.float64),
                 (LEVEL_BEFORE, (B, k), np.float64), (SET_POINT_BEFORE, (B, k), np.float64),
-                (FAULT, (2,), np.int64)):
+                (FAULT, (2,), np.int64), (PALATABILITY, (B,), np.float64)):
             engine[index] = np.zeros(shape, dtype)
         engine[ALIVE][:] = True
         physiology = self.physiology
@@ -338,7 +340,8 @@ class TaskCore:
         self._engine = engine
         self.reward_channel = RewardChannel(config.reward, config.drive_weight,
                                             config.task_weight, config.sensory_bias,
-                                            config.on_lethal, config.lethal_penalty)
+                                            config.on_lethal, config.lethal_penalty,
+                                            config.palatability_weight)
         self.state = self.world.allocate(batch)
         self.events = self.world.allocate_events(batch)
         self._state = tuple(self.state.values())

@@ -115,7 +115,7 @@ def _switched_channel(core: TaskCore, kind: str | None, changes: dict[str, Any])
         fields["kind"] = kind
     if not fields:
         raise ConfigError("kind", kind, "a reward channel kind or at least one of drive_weight, "
-                          "task_weight, bias to change")
+                          "task_weight, bias, palatability_weight to change")
     # dataclasses.replace runs RewardChannel's own validation (ConfigError on bad values).
     return dataclasses.replace(core.reward_channel, **fields)
 
@@ -278,7 +278,7 @@ class VectorPerNeedReward(VectorWrapper):
 
 
 class SwitchRewardChannel(gym.Wrapper, gym.utils.RecordConstructorArgs):
-    """Pay with another reward channel (kind, weights or sensory bias).
+    """Pay with another reward channel (kind, weights, sensory bias or palatability weight).
 
     Design: the wrapper replaces the core's ``reward_channel`` with a copy
     that has the given fields changed (``dataclasses.replace``, so the
@@ -295,19 +295,23 @@ class SwitchRewardChannel(gym.Wrapper, gym.utils.RecordConstructorArgs):
         env: a needbench task.
         kind: ``drive_reduction``, ``negative_drive``, ``survival`` or
             ``sensory_estimate`` (None keeps the current kind).
-        drive_weight, task_weight, bias: new values (None keeps the current).
+        drive_weight, task_weight, bias, palatability_weight: new values (None
+            keeps the current).
     """
 
     def __init__(self, env: gym.Env, kind: str | None = None, *,
                  drive_weight: float | None = None, task_weight: float | None = None,
-                 bias: float | list[float] | None = None):
+                 bias: float | list[float] | None = None,
+                 palatability_weight: float | None = None):
         gym.utils.RecordConstructorArgs.__init__(self, kind=kind, drive_weight=drive_weight,
-                                                 task_weight=task_weight, bias=bias)
+                                                 task_weight=task_weight, bias=bias,
+                                                 palatability_weight=palatability_weight)
         gym.Wrapper.__init__(self, env)
         core = task_core(env)
         self.previous_channel = core.reward_channel
         self.reward_channel = _switched_channel(
-            core, kind, {"drive_weight": drive_weight, "task_weight": task_weight, "bias": bias})
+            core, kind, {"drive_weight": drive_weight, "task_weight": task_weight, "bias": bias,
+                         "palatability_weight": palatability_weight})
         core.reward_channel = self.reward_channel
 
 
@@ -316,12 +320,14 @@ class VectorSwitchRewardChannel(VectorWrapper):
 
     def __init__(self, env: VectorEnv, kind: str | None = None, *,
                  drive_weight: float | None = None, task_weight: float | None = None,
-                 bias: float | list[float] | None = None):
+                 bias: float | list[float] | None = None,
+                 palatability_weight: float | None = None):
         super().__init__(env)
         core = task_core(env)
         self.previous_channel = core.reward_channel
         self.reward_channel = _switched_channel(
-            core, kind, {"drive_weight": drive_weight, "task_weight": task_weight, "bias": bias})
+            core, kind, {"drive_weight": drive_weight, "task_weight": task_weight, "bias": bias,
+                         "palatability_weight": palatability_weight})
         core.reward_channel = self.reward_channel
 
 

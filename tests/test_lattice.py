@@ -51,5 +51,10 @@ def test_refuses_tasks_it_cannot_model():
         gym.make("needbench/Menu-v0", need_overrides={}).unwrapped.core.finite_model()
     with pytest.raises(ConfigError, match="model"):
         gym.make("needbench/Forewarn-v0").unwrapped.core.finite_model()
+    # Drift's model is the annual mean, not the step's outcome, even with fixed set points.
+    fixed = {"energy": {"adaptation_rate": 0.0, "uptake_rate": float("inf")},
+             "water": {"adaptation_rate": 0.0}}
+    with pytest.raises(ConfigError, match="stationary"):
+        gym.make("needbench/Drift-v0", need_overrides=fixed).unwrapped.core.finite_model()
     with pytest.raises(ConfigError, match="resolution"):
         gym.make("needbench/Menu-v0").unwrapped.core.finite_model(resolution=0)

@@ -284,9 +284,10 @@ def test_compare_command_writes_table_json_and_figure(run_folder, capsys, tmp_pa
                  "--metric", "discounted_drive", "--out", str(tmp_path)])
     assert code == 0
     printed = capsys.readouterr().out
-    assert "P(setpoint-controller > random)" in printed and "all 2 tasks" in printed
+    # The controller now runs on Forewarn too: Menu, Arena and Forewarn.
+    assert "P(setpoint-controller > random)" in printed and "all 3 tasks" in printed
     record = json.loads((tmp_path / "comparison.json").read_text())
-    assert record["higher_is_better"] is False and len(record["rows"]) == 3
+    assert record["higher_is_better"] is False and len(record["rows"]) == 4
     assert _png_size((tmp_path / "comparison.png").read_bytes()) == figures.FIGURE_PIXELS
     assert main(["compare", str(run_folder), "--agents", "random", "nobody"]) == 2
 

@@ -72,6 +72,30 @@ def test_sensory_estimate_sees_biased_outcome():
     assert lured.drive_after[0] == pytest.approx(1.0)  # the body's true drive
 
 
+def test_palatability_is_added_to_every_channel_with_its_weight():
+    drive = QuadraticDrive()
+    before, after = body([-2.0, 0.0]), body([-1.0, 0.0])
+    intake = np.array([[1.0, 0.0]])
+    palatability = np.array([0.7])
+    # Source: Keramati & Gutkin (2014), r_t = D(h_t) - D(h_t + k_hat_t) + T_t: with the
+    # quadratic drive D goes 4 -> 1, so r = 3 + 0.7.
+    sensory = RewardChannel("sensory_estimate").compute(drive, before, after, intake=intake,
+                                                        palatability=palatability)
+    assert sensory.total[0] == pytest.approx(3.7) and sensory.internal[0] == pytest.approx(3.7)
+    halved = RewardChannel("drive_reduction", drive_weight=2.0, palatability_weight=0.5)
+    assert halved.compute(drive, before, after, palatability=palatability).total[0] == \
+        pytest.approx(2.0 * (3.0 + 0.35))
+    off = RewardChannel("sensory_estimate", palatability_weight=0.0)
+    assert off.compute(drive, before, after, intake=intake,
+                       palatability=palatability).total[0] == 3.0
+    # The whole outcome assembly pays it too.
+    from needbench.envs.presets import preset
+
+    physiology = preset("abstract").physiology(["energy", "water"])
+    outcome = RewardChannel().outcome(physiology, drive, before, after, palatability=palatability)
+    assert outcome.reward[0] == pytest.approx(3.7)
+
+
 def test_invalid_channel():
     with pytest.raises(ConfigError, match="reward.kind"):
         RewardChannel("pleasure")

@@ -23,7 +23,7 @@ from needbench.envs.wrappers import (
     per_need_drive,
 )
 
-TASKS = ("needbench/Menu-v0", "needbench/Gamble-v0", "needbench/Lure-v0", "needbench/Shift-v0")
+TASKS = ("needbench/Menu-v0", "needbench/Gamble-v0", "needbench/Lure-v1", "needbench/Shift-v0")
 
 #: (single wrapper, vector wrapper, keyword arguments) of every wrapper.
 PAIRS = {
@@ -150,7 +150,7 @@ def test_normalised_state_reaches_but_never_passes_one():
     # Source: abstract preset, lethal at -6 bands; limit 2 * 6 = 12, so -6 / 12 = -0.5.
     assert obs[0] == pytest.approx(-0.5, abs=1e-5)
     assert env.observation_space.contains(obs)
-    vec = VectorNormaliseInternalState(make_vec("needbench/Lure-v0", 2, observation="dict"))
+    vec = VectorNormaliseInternalState(make_vec("needbench/Lure-v1", 2, observation="dict"))
     obs, _ = vec.reset(seed=0)
     assert vec.single_observation_space["internal"] == spaces.Box(-1.0, 1.0, (2,), np.float32)
     assert np.all(np.abs(obs["internal"]) <= 1.0)
@@ -220,7 +220,9 @@ def test_switch_reward_channel_pays_the_new_channel():
         by_hand = -math.sqrt(sum(abs(d) ** 3 for d in info["deviation"]))
         assert reward == pytest.approx(by_hand, abs=1e-12)
         assert info["reward_internal"] == pytest.approx(by_hand, abs=1e-12)
-    env = SwitchRewardChannel(make("needbench/Lure-v0"), "drive_reduction")
+    # Honest drive reduction: the fudge's palatability switched off too.
+    env = SwitchRewardChannel(make("needbench/Lure-v1"), "drive_reduction",
+                              palatability_weight=0.0)
     _, info = env.reset(seed=0)
     for action in [3, 3, 1]:
         before = info["deviation"]

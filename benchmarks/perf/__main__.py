@@ -156,7 +156,7 @@ def core_stepper(copies: int) -> Callable[[], None]:
     drives, reward, internal = drive(level, set_point), np.zeros(copies), np.zeros(copies)
     alive = np.ones(copies, np.bool_)
     scratch, work = np.zeros((2, k)), np.zeros((1, k))
-    task = np.zeros(copies)
+    task, palatability = np.zeros(copies), np.zeros(copies)
 
     def step():
         before[...] = level
@@ -165,8 +165,8 @@ def core_stepper(copies: int) -> Callable[[], None]:
                        body.coefficients, body.coupling, body.coupling_below, body.flags,
                        streams.keys, streams.counter, scratch)
         settle_batch(before, set_point_before, level, set_point, intake, zeros, False, task,
-                     drives, body.coefficients, channel, bias, drive.table(k), drive.exponents,
-                     work, reward, internal, alive)
+                     palatability, drives, body.coefficients, channel, bias, drive.table(k),
+                     drive.exponents, work, reward, internal, alive)
 
     return step
 

@@ -263,6 +263,19 @@ class DriftWorld(World):
                 self.seasonal, self.amplitude, out)
         return out
 
+    def model(self) -> dict[str, Any]:
+        """The annual-mean outcome model, for controllers: ``items`` names,
+        ``probabilities`` (I, 1) ones and ``effects`` (I, 1, K), what each item
+        delivers at its mean yield, in need units; ``seasonal`` (I,) bool,
+        ``peaks`` (I,) and ``amplitude``: the year's modulation of seasonal
+        items, whose yield at time of year p is the mean times 1 + amplitude
+        cos(2 pi (p - peak)) (:meth:`yields` gives it for the current state).
+        ``stationary`` is False: the mean model is not the step's outcome, so
+        no exact finite model is built from it."""
+        return {"items": self.item_names, "probabilities": np.ones((len(self.item_names), 1)),
+                "effects": self.effects[:, None, :], "seasonal": self.seasonal,
+                "peaks": self.peaks, "amplitude": self.amplitude, "stationary": False}
+
     def text(self, state, index):
         season = float(self.season(state)[index])
         year = int((state["start"][index] + state["day"][index] / self.year_length) // 1) + 1

@@ -220,6 +220,26 @@ class ForewarnWorld(World):
         return {"cue": np.zeros(batch, np.bool_), "disturbance": np.zeros(batch, np.bool_),
                 "prepared": np.zeros(batch, np.bool_)}
 
+    def model(self) -> dict[str, Any]:
+        """The action model, for controllers: ``actions`` names, ``probabilities``
+        (A, 1) ones and ``effects`` (A, 1, K), what each action delivers at
+        once, in need units (eating goes through the gut; the oilskin's
+        energy cost per worn step is ``coat_cost_vector``); ``shelter``: the
+        oilskin, as ``need`` (the disturbed need), ``direction`` (-1: the
+        squall lowers it, +1: raises it), ``put_on`` and ``take_off`` (action
+        indices) and ``worn_feature`` (the world feature that shows it worn).
+        ``stationary`` is False: the weather is not in the model, so no exact
+        finite model is built from it."""
+        effects = np.zeros((len(ACTIONS), 1, self.physiology.num_needs))
+        effects[EAT, 0] = self.meal_vector
+        effects[DRINK, 0] = self.drink_vector
+        return {"actions": ACTIONS, "probabilities": np.ones((len(ACTIONS), 1)),
+                "effects": effects, "coat_cost_vector": self.coat_cost_vector,
+                "shelter": {"need": self.disturbed_need,
+                            "direction": -1 if self.chill >= 0 else 1,
+                            "put_on": PUT_ON, "take_off": TAKE_OFF, "worn_feature": "coat"},
+                "stationary": False}
+
     def weather(self, state, index) -> tuple[str, str]:
         """(phase, words) of copy ``index``: phase ``calm``, ``warned`` (the horn has
         sounded, the squall is still to come) or ``squall``."""

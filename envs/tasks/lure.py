@@ -1,4 +1,4 @@
-"""Lure: some items are perceived otherwise than they nourish; reward follows perception."""
+"""Lure: some items reward otherwise than they nourish: hyper-palatable or misperceived."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ from typing import Any
 import numpy as np
 
 from needbench.envs.compiled import kernel
-from needbench.envs.engine import COUNTERS, INTAKE, KEYS, PERCEIVED, settle_all
-from needbench.envs.errors import ConfigError, check_finite
+from needbench.envs.engine import COUNTERS, INTAKE, KEYS, PALATABILITY, PERCEIVED, settle_all
+from needbench.envs.errors import ConfigError, check_choice, check_finite
 from needbench.envs.physiology import Physiology
 from needbench.envs.task import NeedEnv, NeedVectorEnv
 from needbench.envs.tasks.menu import (
@@ -26,7 +26,7 @@ FAIR_STALLS: tuple[tuple[str, tuple[tuple[float, Mapping[str, float]], ...]], ..
     ("rest", ((1.0, {}),)),
     ("rye bun", ((1.0, {"energy": 0.8}),)),
     ("well water", ((1.0, {"water": 0.8}),)),
-    # Rich, yet light on the tongue: the senses register little of its energy.
+    # Rich and sweet: the lure of the fair (FAIR_LURE_KINDS: how it lures).
     ("honey fudge", ((1.0, {"energy": 1.0}),)),
 )
 
@@ -34,13 +34,26 @@ FAIR_STALLS: tuple[tuple[str, tuple[tuple[float, Mapping[str, float]], ...]], ..
 #: perceived outcome is k_hat = k + bias. The fudge's energy is under-registered.
 FAIR_LURES: Mapping[str, Mapping[str, float]] = {"honey fudge": {"energy": -0.6}}
 
+#: How palatable each item is: {item: T}, the reward paid beyond what the item
+#: does for the needs (reward units). The fudge is hyper-palatable.
+FAIR_PALATABILITY: Mapping[str, float] = {"honey fudge": 0.5}
+
+#: The two ways the fudge lures, chosen by the ``lure`` keyword: the
+#: ``(lures, palatability)`` used where those keywords are not given.
+#: ``"palatable"`` (the default since v1): perceived exactly, palatability 0.5;
+#: ``"under_registered"`` (the v0 fudge): no palatability, energy bias -0.6.
+FAIR_LURE_KINDS: Mapping[str, tuple[Mapping[str, Mapping[str, float]], Mapping[str, float]]] = {
+    "palatable": ({}, FAIR_PALATABILITY),
+    "under_registered": (FAIR_LURES, {}),
+}
+
 
 @kernel
 def _step(actions, constants, state, events, engine):
-    cumulative, effects, band, perceived_effects, is_lure = constants
+    cumulative, effects, band, perceived_effects, is_lure, palatability_table = constants
     (last_outcome,) = state
-    item_event, outcome_event, lure_event, perceived_event = events
-    intake, perceived = engine[INTAKE], engine[PERCEIVED]
+    item_event, outcome_event, lure_event, perceived_event, palatability_event = events
+    intake, perceived, palatability = engine[INTAKE], engine[PERCEIVED], engine[PALATABILITY]
     for b in range(actions.shape[0]):
         item = actions[b]
         outcome = draw_outcome(b, item, cumulative, effects, intake, engine[KEYS],
@@ -48,6 +61,8 @@ def _step(actions, constants, state, events, engine):
         for k in range(intake.shape[1]):
             perceived[b, k] = perceived_effects[item, outcome, k]
             perceived_event[b, k] = perceived_effects[item, outcome, k]
+        palatability[b] = palatability_table[item, outcome]
+        palatability_event[b] = palatability_table[item, outcome]
         item_event[b] = item
         outcome_event[b] = outcome
         lure_event[b] = is_lure[item]
@@ -58,23 +73,40 @@ def _step(actions, constants, state, events, engine):
 
 
 class LureWorld(MenuWorld):
-    """Menu items whose perceived outcome is the true one plus a per-item bias.
+    """Menu items with a per-item palatability and a per-item perception bias.
 
     The body receives the true outcome k; the reward channel is handed the
-    perceived outcome k_hat = k + bias (Effects.perceived), where ``bias`` is
-    zero for honest items, so they are perceived exactly. The bias applies to
-    every outcome of a lure item that delivers anything (an empty outcome is
-    perceived as empty).
+    perceived outcome k_hat = k + bias, where ``bias`` is zero for honest
+    items, so they are perceived exactly, and the item's palatability T
+    (zero for plain items), which it adds to the reward. Bias and
+    palatability apply to every outcome of an item that delivers anything (an
+    empty outcome is perceived as empty and pays no palatability). An item is
+    a lure when it has a bias or a palatability.
+
+    ``lure`` picks the default ``lures`` and ``palatability`` from
+    :data:`FAIR_LURE_KINDS` (for those of its items the menu has); either
+    keyword given explicitly wins.
     """
 
-    parameters = {"items": FAIR_STALLS, "lures": FAIR_LURES}
+    parameters = {"items": FAIR_STALLS, "lure": "palatable", "lures": None, "palatability": None}
     default_needs = ("energy", "water")
     has_perceived = True
     step_kernel = staticmethod(_step)
 
     def __init__(self, physiology: Physiology, items: Sequence = FAIR_STALLS,
-                 lures: Mapping[str, Mapping[str, float]] = FAIR_LURES):
+                 lure: str = "palatable",
+                 lures: Mapping[str, Mapping[str, float]] | None = None,
+                 palatability: Mapping[str, float] | None = None):
         super().__init__(physiology, items)
+        check_choice("lure", lure, tuple(FAIR_LURE_KINDS))
+        # The kind's defaults name the fair's own fudge: with other items they
+        # apply to those of the fair's items present; explicit keywords are checked.
+        default_lures, default_palatability = FAIR_LURE_KINDS[lure]
+        if lures is None:
+            lures = {n: v for n, v in default_lures.items() if n in self.item_names}
+        if palatability is None:
+            palatability = {n: v for n, v in default_palatability.items()
+                            if n in self.item_names}
         if not isinstance(lures, Mapping):
             raise ConfigError("lures", lures, "a mapping {item name: {need: bias}}")
         self.bias = np.zeros((len(self.item_names), physiology.num_needs))
@@ -86,17 +118,30 @@ class LureWorld(MenuWorld):
             for need, value in bias.items():
                 check_finite(f"lures.{name}.{need}", value)
             self.bias[self.item_names.index(name)] = physiology.vector(dict(bias))
-        self.is_lure = np.any(self.bias != 0, axis=1)
-        # Perceived outcomes of every (item, outcome): empty outcomes stay empty.
+        if not isinstance(palatability, Mapping):
+            raise ConfigError("palatability", palatability, "a mapping {item name: T}")
+        self.palatability = np.zeros(len(self.item_names))
+        for name, value in palatability.items():
+            if name not in self.item_names:
+                raise ConfigError("palatability", name,
+                                  "an item name: " + ", ".join(self.item_names))
+            self.palatability[self.item_names.index(name)] = check_finite(
+                f"palatability.{name}", value)
+        self.is_lure = np.any(self.bias != 0, axis=1) | (self.palatability != 0)
+        # Perceived outcomes and palatability of every (item, outcome): empty
+        # outcomes stay empty and pay nothing.
         delivers = np.any(self.effects != 0, axis=2, keepdims=True)
         self.perceived_effects = self.effects + np.where(delivers, self.bias[:, None, :], 0.0)
+        self.outcome_palatability = np.where(delivers[:, :, 0], self.palatability[:, None], 0.0)
 
     def constants(self) -> tuple:
-        return (*super().constants(), self.perceived_effects, self.is_lure)
+        return (*super().constants(), self.perceived_effects, self.is_lure,
+                self.outcome_palatability)
 
     def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
         return {**super().allocate_events(batch), "lure": np.zeros(batch, np.bool_),
-                "perceived_intake": np.zeros((batch, self.physiology.num_needs))}
+                "perceived_intake": np.zeros((batch, self.physiology.num_needs)),
+                "palatability": np.zeros(batch)}
 
     def text(self, state, index):
         lures = ", ".join(n for n, lure in zip(self.item_names, self.is_lure, strict=True) if lure)
@@ -104,41 +149,48 @@ class LureWorld(MenuWorld):
 
     def model(self) -> dict[str, Any]:
         """The outcome model of :meth:`MenuWorld.model` plus ``perceived_effects``
-        (I, O, K), the outcomes as the reward channel perceives them, and
-        ``lure`` (I,) bool."""
+        (I, O, K), the outcomes as the reward channel perceives them,
+        ``palatability`` (I, O), the T each outcome pays, and ``lure`` (I,) bool."""
         return {**super().model(), "perceived_effects": self.perceived_effects,
-                "lure": self.is_lure}
+                "palatability": self.outcome_palatability, "lure": self.is_lure}
 
 
 class LureEnv(NeedEnv):
-    """Lure: one fair stall sells a sweet whose energy the senses under-register.
+    """Lure: one fair stall sells a sweet that rewards beyond what it nourishes.
 
     ## Description
     A visitor to an invented winter fair on a frozen lake chooses each step
     between resting, a rye bun (+0.8 band of energy), a cup of well water
     (+0.8 band of water) and honey fudge (+1.0 band of energy). The body gets
     the true outcome k; the reward is computed from the perceived outcome
-    k_hat = k + bias, which is exact for the honest items and, for the lure,
-    carries a per-need bias (``lures``). The default fudge is perceived as
-    k_hat = 0.4 (bias -0.6): near the set point it seems far more rewarding
-    than it is, because the senses miss most of the overshoot it causes. The
-    task probes overconsumption and a persistent deviation caused by the
-    reward channel, not by the body.
+    k_hat = k + bias (exact unless ``lures`` gives a bias) plus the item's
+    palatability T (``palatability``, zero for plain items). By default the
+    fudge is hyper-palatable: perceived exactly, with T = 0.5, so that near
+    the set point it pays more than the overshoot it causes costs, the
+    overconsumption of palatable food of Keramati & Gutkin (2014). With
+    ``lure="under_registered"`` the fudge is the v0 lure instead: no
+    palatability, its energy perceived as k_hat = 0.4 (bias -0.6), so the
+    senses miss most of the overshoot it causes. Either way the task probes a
+    persistent deviation caused by the reward channel, not by the body.
 
     Measured with a greedy one-step agent that picks the item with the best
     expected reward under the env's own reward channel (16 seeds, 200 steps,
-    mean energy deviation over the last 100 steps): on the perceived reward it
-    eats fudge as soon as energy is 0.2 band below the set point and sits at
-    +0.28 band (every seed between +0.27 and +0.29); the same agent on honest
-    drive reduction eats buns and sits at -0.02 band. The sign matters: with
-    the drive-reduction form r = D(h) - D(h + k_hat), an item perceived as
-    *more* nourishing than it is (bias > 0 on the need it feeds) makes a
-    greedy agent stop short of the set point, so it stays hungry (a floss of
-    true energy 0.2 perceived as 0.6 in place of the fudge: -0.22 band, 0.00
-    on honest drive reduction). Food acts at once here (energy ``uptake_rate`` = inf in the
-    default ``need_overrides``): with the preset's gut delay the honest
-    one-step greedy agent itself overshoots (+0.20 band, it does not see the
-    food still in the gut), which would confound the lure's effect.
+    mean energy deviation over the last 100 steps; ``greedy_run`` in
+    ``tests/test_lure.py``): with the palatable fudge it sits at +0.23 band
+    (every seed between +0.21 and +0.27), and the excess grows with T
+    (T = 0: -0.04, 0.25: +0.11, 1.0: +0.56 band); with the under-registered
+    fudge at +0.28 band (every seed between +0.27 and +0.29); the same agent
+    on honest drive reduction (``reward="drive_reduction",
+    palatability_weight=0``) eats buns and sits at -0.02 band. The sign of a
+    bias matters: with the drive-reduction form r = D(h) - D(h + k_hat), an
+    item perceived as *more* nourishing than it is (bias > 0 on the need it
+    feeds) makes a greedy agent stop short of the set point, so it stays
+    hungry (a floss of true energy 0.2 perceived as 0.6 in place of the
+    fudge: -0.22 band, 0.00 on honest drive reduction). Food acts at once
+    here (energy ``uptake_rate`` = inf in the default ``need_overrides``):
+    with the preset's gut delay the honest one-step greedy agent itself
+    overshoots (+0.20 band, it does not see the food still in the gut), which
+    would confound the lure's effect.
 
     ## Action Space
     ``Discrete(len(items))``: the index of the item taken (0 = rest).
@@ -149,11 +201,13 @@ class LureEnv(NeedEnv):
     ``interoception=False`` only the latter. K = 2 (energy, water) by default.
 
     ## Rewards
-    ``sensory_estimate``: r_t = D(h_t) - D(h_t + k_hat_t) with the
-    homeostatic drive (n = 3, m = 2) on band-scaled deviations, where k_hat
-    is the perceived outcome (``info["perceived_intake"]``). With
-    ``reward="drive_reduction"`` the same task pays the honest
-    D(h_t) - D(h_{t+1}).
+    ``sensory_estimate`` with palatability: r_t = D(h_t) - D(h_t + k_hat_t)
+    + T_t with the homeostatic drive (n = 3, m = 2) on band-scaled
+    deviations, where k_hat is the perceived outcome
+    (``info["perceived_intake"]``) and T the palatability of the item taken
+    (``info["palatability"]``), weighted by ``palatability_weight`` (1). With
+    ``reward="drive_reduction", palatability_weight=0`` the same task pays the
+    honest D(h_t) - D(h_{t+1}).
 
     ## Starting State
     Levels uniform within half a band of the set points.
@@ -164,17 +218,23 @@ class LureEnv(NeedEnv):
 
     ## Arguments
     ``items``: a sequence of ``(name, ((probability, {need: amount}), ...))``
-    as in Menu; ``lures``: ``{item name: {need: bias}}``, the perceived extra
-    (negative: under-registered) of each lure item, applied to every outcome
-    that delivers something; and the common task arguments
-    (``needbench.envs.task``). ``info`` adds ``item``, ``outcome``, ``lure``
-    (a lure item was taken) and ``perceived_intake`` (K,).
+    as in Menu; ``lure``: ``"palatable"`` (default) or
+    ``"under_registered"``, which picks the defaults of the next two;
+    ``palatability``: ``{item name: T}``, the reward each item pays beyond
+    its effect on the needs; ``lures``: ``{item name: {need: bias}}``, the
+    perceived extra (negative: under-registered) of each item. Bias and
+    palatability apply to every outcome that delivers something. And the
+    common task arguments (``needbench.envs.task``). ``info`` adds ``item``,
+    ``outcome``, ``lure`` (a lure item was taken), ``perceived_intake`` (K,)
+    and ``palatability``.
 
     ## Vectorized environment
-    ``gymnasium.make_vec("needbench/Lure-v0", num_envs=N,
+    ``gymnasium.make_vec("needbench/Lure-v1", num_envs=N,
     vectorization_mode="vector_entry_point")`` gives :class:`LureVectorEnv`.
 
     ## Version History
+    * v1: the default fudge is hyper-palatable (palatability T = 0.5, perceived
+      exactly); v0's under-registered fudge is ``lure="under_registered"``.
     * v0: initial version.
     """
 

@@ -39,6 +39,20 @@ VARIANTS: dict[str, dict] = {
 }
 VECTOR_COPIES, VECTOR_STEPS, SINGLE_STEPS = 3, 150, 120
 
+#: Keywords that give a family's recorded behaviour after a version bump changed
+#: its defaults, applied beneath every variant's keywords when replaying (the
+#: recordings are never redone):
+#: * Lure-v1 made the fudge hyper-palatable; v0's under-registered fudge is
+#:   ``lure="under_registered"``.
+LEGACY_KEYWORDS: dict[str, dict] = {
+    "Lure": {"lure": "under_registered"},
+}
+
+
+def replay_keywords(name: str, variant: str) -> dict:
+    """The keywords that replay family ``name``'s recording of ``variant``."""
+    return {**LEGACY_KEYWORDS.get(name, {}), **VARIANTS[variant]}
+
 
 def family(task_id: str) -> str:
     """``needbench/Menu-v0`` -> ``Menu``."""
@@ -109,9 +123,9 @@ def path(name: str, variant: str) -> Path:
 
 def record() -> None:
     for task_id in needbench.envs.TASK_IDS:
-        for variant, kwargs in VARIANTS.items():
+        for variant in VARIANTS:
             try:
-                arrays = rollout(task_id, kwargs)
+                arrays = rollout(task_id, replay_keywords(family(task_id), variant))
             except needbench.envs.ConfigError as error:  # e.g. Gamble's needs in mammal units
                 print(f"{family(task_id):<12} {variant:<10} not applicable: {error}")
                 continue
