@@ -333,9 +333,9 @@ def test_watch_settings_are_checked_by_the_agents_dataclass(capsys):
     assert main(["watch", "Arena", "--agent", "tabular-q"]) == 2
     error = capsys.readouterr().err
     assert "an agent that handles needbench/Arena-v0" in error and "Discrete" in error
-    assert main(["watch", "Forewarn", "--agent", "setpoint-controller"]) == 2
+    assert main(["watch", "Drift", "--agent", "exact-planner"]) == 2
     printed = capsys.readouterr()
-    assert "handles needbench/Forewarn-v0" in printed.err and "acts at once" not in printed.out
+    assert "handles needbench/Drift-v0" in printed.err and "acts at once" not in printed.out
 
 
 KEEP_SUITE = """
