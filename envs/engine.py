@@ -163,3 +163,24 @@ def discrete_violation(values, start, count):
         if values[i] < start or values[i] >= start + count:
             return True
     return False
+
+
+@kernel
+def clear_step(engine, copies, outcome):
+    """Copies (indices) just reset: their step rows become those of a reset (reward
+    parts and intake zero, alive), and with ``outcome`` their reward and end flags
+    too (the next-step autoreset's step that only resets)."""
+    intake, internal, task, alive = engine[INTAKE], engine[INTERNAL], engine[TASK], \
+        engine[ALIVE]
+    reward, terminated, truncated = engine[REWARD], engine[TERMINATED], engine[TRUNCATED]
+    for i in range(copies.shape[0]):
+        b = copies[i]
+        internal[b] = 0.0
+        task[b] = 0.0
+        alive[b] = True
+        for k in range(intake.shape[1]):
+            intake[b, k] = 0.0
+        if outcome:
+            reward[b] = 0.0
+            terminated[b] = False
+            truncated[b] = False

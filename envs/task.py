@@ -84,6 +84,7 @@ from needbench.envs.engine import (
     TRUNCATED,
     USES_AMBIENT,
     box_violation,
+    clear_step,
     discrete_violation,
     refresh,
 )
@@ -666,9 +667,7 @@ class NeedVectorEnv(VectorEnv):
         resetting = self._done
         core.step(batched)
         if resetting.any():
-            self._reset_copies(resetting)
-            for index in (REWARD, TERMINATED, TRUNCATED):
-                core.engine[index][resetting] = 0
+            self._reset_copies(resetting, outcome=True)
         reward, terminated, truncated = core.outcome()
         self._done = terminated | truncated
         return core.observation(), reward, terminated, truncated, core.info()
@@ -688,17 +687,16 @@ class NeedVectorEnv(VectorEnv):
                         _final_info=done.copy())
         return core.observation(), reward, terminated, truncated, info
 
-    def _reset_copies(self, mask: np.ndarray) -> None:
+    def _reset_copies(self, mask: np.ndarray, outcome: bool = False) -> None:
         """New episodes in the copies in ``mask``; their rows of the step's info (reward
-        parts, intake, events) become those of a reset: zero, and alive."""
+        parts, intake, events) become those of a reset: zero, and alive. With
+        ``outcome``, their reward and end flags are zeroed too."""
         core = self.core
-        core.reset(self._keys.next(np.flatnonzero(mask)), mask)
-        engine = core.engine
-        for index in (INTERNAL, TASK, INTAKE):
-            engine[index][mask] = 0
-        engine[ALIVE][mask] = True
+        copies = np.flatnonzero(mask)
+        core.reset(self._keys.next(copies), mask)
+        clear_step(core.engine, copies, outcome)
         for value in core.events.values():
-            value[mask] = 0
+            value[copies] = 0
 
     def render(self):
         if self.render_mode is None:

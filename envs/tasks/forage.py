@@ -16,9 +16,10 @@ of B copies is a dict of arrays with a leading batch axis:
 * ``stock``: (B, H, W) food on each fig bush, in band units of energy (0 off bushes).
 * ``position``: (B, 2) int64 row and column of the agent.
 * ``clock``: (B,) int64 steps since the episode began (the episode starts at dawn).
-* ``sources``: (B, 1 + H W) int64, the count then the flat indices of the food,
-  water and shade cells, listed at reset (and afresh by ``core.observe()``, so
-  terrain written from outside is seen there) for the nearest-source search.
+* ``sources``: (B, 1 + 2 H W) int64, the count then the row and column of each
+  food, water and shade cell (row-major), listed at reset for the nearest-source search and the
+  regrowth of bushes (terrain is fixed within an episode; after writing
+  ``terrain`` from outside, ``core.observe()`` lists the cells afresh).
 """
 
 from __future__ import annotations
@@ -151,44 +152,51 @@ def nearest_sources(b, terrain, stock, position, bite):
 
 
 @inline_kernel
-def nearest_listed_sources(b, terrain, stock, position, bite, sources):
-    """:func:`nearest_sources` over the copy's listed source cells only (``sources[b, 0]``
-    cells, flat indices in row-major order, from :func:`list_sources`): the same
-    keys, so the same answer, without scanning sand and walls."""
+def nearest_listed_sources(b, terrain, stock, position, bite, sources, found):
+    """:func:`nearest_sources` over the copy's listed source cells only (from
+    :func:`list_sources`): the same keys and ties, without scanning sand and walls.
+
+    Writes ``found`` (3, 2): the (row, column) of the nearest food, water and
+    shade, (-1, -1) for none. No integer division: on the hot path it costs
+    more than the rest of the search.
+    """
     columns = terrain.shape[2]
     cells = terrain.shape[1] * columns
     row, column = position[b, 0], position[b, 1]
-    ready = food = water = shade = _NONE
-    for j in range(1, sources[b, 0] + 1):
-        flat = sources[b, j]
-        r, c = flat // columns, flat % columns
+    best_ready = best_food = best_water = best_shade = _NONE
+    for kind in range(3):
+        found[kind, 0] = found[kind, 1] = -1
+    ready_r = ready_c = -1
+    for j in range(sources[b, 0]):
+        r, c = sources[b, 1 + 2 * j], sources[b, 2 + 2 * j]
         cell = terrain[b, r, c]
-        key = (abs(r - row) + abs(c - column)) * cells + flat
+        key = (abs(r - row) + abs(c - column)) * cells + r * columns + c
         if cell == FOOD:
-            food = min(food, key)
-            if holds_a_bite(stock[b, r, c], bite):
-                ready = min(ready, key)
+            if key < best_food:
+                best_food, found[FOOD_KIND, 0], found[FOOD_KIND, 1] = key, r, c
+            if holds_a_bite(stock[b, r, c], bite) and key < best_ready:
+                best_ready, ready_r, ready_c = key, r, c
         elif cell == WATER:
-            water = min(water, key)
+            if key < best_water:
+                best_water, found[WATER_KIND, 0], found[WATER_KIND, 1] = key, r, c
         elif cell == SHADE:
-            shade = min(shade, key)
-    if ready < _NONE:
-        food = ready
-    return (food % cells if food < _NONE else -1, water % cells if water < _NONE else -1,
-            shade % cells if shade < _NONE else -1)
+            if key < best_shade:
+                best_shade, found[SHADE_KIND, 0], found[SHADE_KIND, 1] = key, r, c
+    if best_ready < _NONE:
+        found[FOOD_KIND, 0], found[FOOD_KIND, 1] = ready_r, ready_c
 
 
 @inline_kernel
 def list_sources(b, terrain, sources):
-    """List copy ``b``'s food, water and shade cells (row-major) in ``sources[b]``."""
-    columns = terrain.shape[2]
+    """List copy ``b``'s food, water and shade cells, row-major, in ``sources[b]``:
+    the count, then each cell's row and column."""
     count = 0
     for r in range(terrain.shape[1]):
-        for c in range(columns):
+        for c in range(terrain.shape[2]):
             cell = terrain[b, r, c]
             if cell == FOOD or cell == WATER or cell == SHADE:
+                sources[b, 1 + 2 * count], sources[b, 2 + 2 * count] = r, c
                 count += 1
-                sources[b, count] = r * columns + c
     sources[b, 0] = count
 
 
@@ -288,9 +296,8 @@ def lay_out_garden(b, sites, counts, pillar_chance, capacity, terrain, stock, po
 
 
 @inline_kernel
-def observe_garden(b, terrain, stock, position, clock, sources, capacity, bite, day_sine,
-                   day_cosine,
-                   full_view, radius, observation, at):
+def observe_garden(b, terrain, stock, position, clock, sources, found, capacity, bite,
+                   day_sine, day_cosine, full_view, radius, observation, at):
     """Copy ``b``'s world features from column ``at`` of ``observation``: position,
     time of day and the view (the deviations before them: ``observe_internal``).
 
@@ -305,17 +312,17 @@ def observe_garden(b, terrain, stock, position, clock, sources, capacity, bite, 
     observation[b, at + 2] = np.float32(day_sine[hour])
     observation[b, at + 3] = np.float32(day_cosine[hour])
     if full_view:
-        # Food offset and stock, water offset, shade offset.
-        food_cell, water_cell, shade_cell = nearest_listed_sources(b, terrain, stock, position,
-                                                                   bite, sources)
+        # Food offset and stock, water offset, shade offset; (0, 0) where none is.
+        nearest_listed_sources(b, terrain, stock, position, bite, sources, found)
         slot = at + 4
-        for kind, cell in enumerate((food_cell, water_cell, shade_cell)):
-            row_offset, column_offset = offset_to(b, cell, columns, position)
+        for kind in range(3):
+            r, c = found[kind, 0], found[kind, 1]
+            row_offset, column_offset = (r - row, c - column) if r >= 0 else (0, 0)
             observation[b, slot] = np.float32(row_offset / (rows - 1))
             observation[b, slot + 1] = np.float32(column_offset / (columns - 1))
             slot += 2
             if kind == FOOD_KIND:
-                held = stock[b, cell // columns, cell % columns] if cell >= 0 else 0.0
+                held = stock[b, r, c] if r >= 0 else 0.0
                 observation[b, slot] = np.float32(held / capacity)
                 slot += 1
     else:
@@ -343,13 +350,14 @@ def observe_copies(mask, constants, state, engine):
     day_sine, day_cosine = by_hour[DAY_SINE], by_hour[DAY_COSINE]
     full_view, radius = counts[FULL_VIEW] != 0, counts[VIEW_RADIUS]
     terrain, stock, position, clock, sources = state
+    found = constants[9]
     observation = engine[OBSERVATION]
     at = int(engine[OPTIONS][WORLD_OFFSET])
     for b in range(position.shape[0]):
         if mask is None or mask[b]:
             observe_internal(engine, b)
-            observe_garden(b, terrain, stock, position, clock, sources, capacity, bite, day_sine,
-                           day_cosine, full_view, radius, observation, at)
+            observe_garden(b, terrain, stock, position, clock, sources, found, capacity, bite,
+                           day_sine, day_cosine, full_view, radius, observation, at)
 
 
 @kernel
@@ -371,18 +379,17 @@ def _reset(mask, constants, state, engine):
 def _step(actions, constants, state, events, engine):
     """Every copy's world step (move, regrow, eat and drink, the air and sun of the
     hour), then the bodies, then the observations."""
-    _, _, numbers, by_hour, by_cell, activity_per_action, by_need, _, _ = constants
+    _, _, numbers, by_hour, by_cell, activity_per_action, by_need, _, _, _ = constants
     capacity, bite, regrowth = numbers[FOOD_CAPACITY], numbers[BITE], numbers[REGROWTH]
     open_air, daylight = by_hour[OPEN_AIR], by_hour[DAYLIGHT]
     exposure, water_per_cell = by_cell[EXPOSURE], by_cell[WATER_DRUNK]
     food_to_intake, water_to_intake = by_need[FOOD_TO_INTAKE], by_need[WATER_TO_INTAKE]
     neutral_ambient, air_to_ambient = by_need[NEUTRAL_AMBIENT], by_need[AIR_TO_AMBIENT]
     sun_to_forcing = by_need[SUN_TO_FORCING]
-    terrain, stock, position, clock, _ = state
+    terrain, stock, position, clock, sources = state
     eaten_event, drunk_event, bumped_event, sun_event, air_event, time_event, where = events
     intake, ambient, forcing = engine[INTAKE], engine[AMBIENT], engine[FORCING]
     activity, task = engine[ACTIVITY], engine[TASK]
-    rows, columns = terrain.shape[1], terrain.shape[2]
     day_length = open_air.shape[0]
     for b in range(actions.shape[0]):
         action = actions[b]
@@ -394,10 +401,11 @@ def _step(actions, constants, state, events, engine):
         row, column = position[b, 0], position[b, 1]
         cell = terrain[b, row, column]
         # Regrow, then eat: off-bush stock is 0, so "eaten" is 0 there without a test.
-        for r in range(rows):
-            for c in range(columns):
-                grown = min(stock[b, r, c] + regrowth, capacity)
-                stock[b, r, c] = grown if terrain[b, r, c] == FOOD else 0.0
+        # Only bushes hold stock: the listed source cells cover them all.
+        for j in range(sources[b, 0]):
+            r, c = sources[b, 1 + 2 * j], sources[b, 2 + 2 * j]
+            if terrain[b, r, c] == FOOD:
+                stock[b, r, c] = min(stock[b, r, c] + regrowth, capacity)
         eaten = min(stock[b, row, column], bite)
         stock[b, row, column] -= eaten
         drunk = water_per_cell[cell]
@@ -581,8 +589,10 @@ class ForageWorld(World):
                             self.air_to_ambient, self.sun_to_forcing])
         # Work arrays of the garden's layout: the first places of the free cells.
         places = self.food_patches + self.water_cells + self.palms + 1
+        # ... and of the nearest-source search: (row, column) of each kind found.
         return (sites, counts, numbers, by_hour, by_cell, self.activity_per_action, by_need,
-                np.empty(places), np.empty(places, dtype=np.int64))
+                np.empty(places), np.empty(places, dtype=np.int64),
+                np.empty((3, 2), dtype=np.int64))
 
     def allocate(self, batch: int) -> dict[str, np.ndarray]:
         shape = (batch, self.rows, self.columns)
@@ -591,7 +601,7 @@ class ForageWorld(World):
                 "clock": np.zeros(batch, dtype=np.int64),
                 # Count, then flat indices of the food, water and shade cells (row-major),
                 # listed at reset: the nearest-source search skips sand and walls.
-                "sources": np.zeros((batch, 1 + self.rows * self.columns), dtype=np.int64)}
+                "sources": np.zeros((batch, 1 + 2 * self.rows * self.columns), dtype=np.int64)}
 
     def allocate_events(self, batch: int) -> dict[str, np.ndarray]:
         return {"eaten": np.zeros(batch), "drunk": np.zeros(batch),
