@@ -45,22 +45,6 @@ MAX_STEPS, DEVIATION_LIMIT, WORLD_OFFSET = 0, 1, 2
 
 
 @inline_kernel
-def clear_effects(engine, b):
-    """Zero what the world does to copy ``b`` before the world acts."""
-    intake, activity, ambient, forcing = engine[INTAKE], engine[ACTIVITY], engine[AMBIENT], \
-        engine[FORCING]
-    task, perceived = engine[TASK], engine[PERCEIVED]
-    activity[b] = 0.0
-    task[b] = 0.0
-    engine[PALATABILITY][b] = 0.0
-    for k in range(intake.shape[1]):
-        intake[b, k] = 0.0
-        ambient[b, k] = 0.0
-        forcing[b, k] = 0.0
-        perceived[b, k] = 0.0
-
-
-@inline_kernel
 def _internal_state(engine, b):
     """Deviation (band units) and in-band flag of copy ``b`` from its level."""
     level, set_point, deviation = engine[LEVEL], engine[SET_POINT], engine[DEVIATION]

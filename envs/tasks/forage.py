@@ -122,39 +122,11 @@ def holds_a_bite(stock, bite):
 
 
 @inline_kernel
-def nearest_sources(b, terrain, stock, position, bite):
-    """Flat cell indices of copy ``b``'s nearest food, water and shade (-1: none).
-
-    One scan of the grid finds all three by Manhattan distance from the agent,
-    ties to the first cell in row-major order: each kind keeps the least key
-    distance * cells + flat index, which orders by distance, then by index.
-    Food counts only bushes holding a full bite, unless none does (then every bush).
-    """
-    rows, columns = terrain.shape[1], terrain.shape[2]
-    row, column = position[b, 0], position[b, 1]
-    cells = rows * columns
-    ready = food = water = shade = _NONE
-    for r in range(rows):
-        row_distance = abs(r - row)
-        for c in range(columns):
-            cell = terrain[b, r, c]
-            key = (row_distance + abs(c - column)) * cells + r * columns + c
-            # Selects, not branches: the cell types are unpredictable to a branch.
-            food = min(food, key if cell == FOOD else _NONE)
-            ready = min(ready, key if cell == FOOD and holds_a_bite(stock[b, r, c], bite)
-                        else _NONE)
-            water = min(water, key if cell == WATER else _NONE)
-            shade = min(shade, key if cell == SHADE else _NONE)
-    if ready < _NONE:
-        food = ready
-    return (food % cells if food < _NONE else -1, water % cells if water < _NONE else -1,
-            shade % cells if shade < _NONE else -1)
-
-
-@inline_kernel
 def nearest_listed_sources(b, terrain, stock, position, bite, sources, found):
-    """:func:`nearest_sources` over the copy's listed source cells only (from
-    :func:`list_sources`): the same keys and ties, without scanning sand and walls.
+    """Copy ``b``'s nearest food, water and shade among its listed source cells
+    (:func:`list_sources`), by Manhattan distance from the agent, ties to the
+    first cell in row-major order (the least key distance * cells + flat index).
+    Food counts only bushes holding a full bite, unless none does (then every bush).
 
     Writes ``found`` (3, 2): the (row, column) of the nearest food, water and
     shade, (-1, -1) for none. No integer division: on the hot path it costs
@@ -200,21 +172,15 @@ def list_sources(b, terrain, sources):
     sources[b, 0] = count
 
 
-@inline_kernel
-def offset_to(b, cell, columns, position):
-    """(rows, columns) offset from copy ``b``'s agent to flat ``cell``; (0, 0) for -1."""
-    if cell < 0:
-        return 0, 0
-    return cell // columns - position[b, 0], cell % columns - position[b, 1]
-
-
 @kernel
-def _nearest_offsets(terrain, stock, position, bite, kind, out):
-    """``out`` (B, 2): each copy's offset to its nearest source of ``kind``."""
-    columns = terrain.shape[2]
+def _nearest_offsets(terrain, stock, position, bite, kind, sources, found, out):
+    """``out`` (B, 2): each copy's offset to its nearest source of ``kind``, (0, 0)
+    where there is none; the cells are listed afresh from ``terrain`` first."""
     for b in range(position.shape[0]):
-        cell = nearest_sources(b, terrain, stock, position, bite)[kind]
-        out[b, 0], out[b, 1] = offset_to(b, cell, columns, position)
+        list_sources(b, terrain, sources)
+        nearest_listed_sources(b, terrain, stock, position, bite, sources, found)
+        r, c = found[kind, 0], found[kind, 1]
+        out[b, 0], out[b, 1] = (r - position[b, 0], c - position[b, 1]) if r >= 0 else (0, 0)
 
 
 @kernel
@@ -712,8 +678,10 @@ class ForageWorld(World):
         self._check_source(need)
         position = state["position"]
         out = np.empty(position.shape, dtype=np.int64)
+        # Work arrays: terrain written from outside is listed afresh, state untouched.
+        sources = np.empty((position.shape[0], 1 + 2 * self.rows * self.columns), np.int64)
         _nearest_offsets(state["terrain"], state["stock"], position, self.bite,
-                         SOURCE_KIND[need], out)
+                         SOURCE_KIND[need], sources, np.empty((3, 2), np.int64), out)
         return out
 
     # --- rendering ------------------------------------------------------------
