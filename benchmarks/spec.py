@@ -15,6 +15,10 @@ A suite file (parsed with the standard library's ``tomllib``):
     id = "needbench/Menu-v0"          # a registered Gymnasium id
     [task.kwargs]                     # optional: keyword arguments for gymnasium.make
     task_weight = 0.0
+    [task.agents.tabular-q]           # optional: this task's settings of a suite agent,
+    total_steps = 50000               # over its [[agent]] entry (a budget, and
+    [task.agents.tabular-q.hyperparameters]  # hyperparameters merged key by key)
+    world_bins = 4
 
     [[agent]]                         # one or more
     name = "tabular-q"                # a registered agent name
@@ -111,10 +115,20 @@ MISSING = _Missing()
 
 @dataclass(frozen=True)
 class TaskSpec:
-    """A task of the suite: a Gymnasium id and the keyword arguments to make it with."""
+    """A task of the suite: a Gymnasium id and the keyword arguments to make it with.
+
+    Attributes:
+        agents: this task's own settings of some of the suite's agents, by
+            agent name: ``{"total_steps": int, "hyperparameters": {...}}``,
+            either key optional. A job of this task takes the agent's
+            budget from here when given, and its hyperparameters are the
+            agent's with these written over them key by key (sweeps apply
+            after). For a setting one value cannot serve on every task.
+    """
 
     id: str
     kwargs: dict[str, Any] = field(default_factory=dict)
+    agents: dict[str, dict[str, Any]] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -194,7 +208,8 @@ class Suite:
 
 _TOP_KEYS = ("suite", "task", "agent", "sweep")
 _SUITE_KEYS = ("name", "description", "seeds", "eval_episodes", "gamma", "max_total_steps")
-_TASK_KEYS = ("id", "kwargs")
+_TASK_KEYS = ("id", "kwargs", "agents")
+_TASK_AGENT_KEYS = ("total_steps", "hyperparameters")
 _AGENT_KEYS = ("name", "total_steps", "hyperparameters")
 _SWEEP_KEYS = ("target", "parameter", "values", "match")
 
@@ -326,12 +341,32 @@ class _Parser:
                                             default=DEFAULT_MAX_TOTAL_STEPS),
         }
 
-    def task(self, table: dict[str, Any], path: str, known: Collection[str] | None) -> TaskSpec:
+    def task(self, table: dict[str, Any], path: str, known: Collection[str] | None,
+             max_total_steps: int) -> TaskSpec:
         self.check_keys(table, _TASK_KEYS, path)
         task_id = self.name(self.string(table, "id", path), f"{path}.id", known, "task id")
         kwargs = self.table(table.get("kwargs", {}), f"{path}.kwargs",
                             header=f"[{path.split('[')[0]}.kwargs]")
-        return TaskSpec(task_id, self.plain_value(kwargs, f"{path}.kwargs"))
+        settings = self.table(table.get("agents", {}), f"{path}.agents",
+                              header="[task.agents.<agent name>]")
+        agents = {}
+        for name, entry in settings.items():
+            where = _join(f"{path}.agents", name)
+            entry = self.table(entry, where, header=f"[task.agents.{name}]")
+            self.check_keys(entry, _TASK_AGENT_KEYS, where)
+            if not entry:
+                raise self.error(where, entry, "a table with total_steps and/or "
+                                               "[task.agents.<name>.hyperparameters]")
+            resolved: dict[str, Any] = {}
+            if "total_steps" in entry:
+                resolved["total_steps"] = self.budget(entry["total_steps"],
+                                                      f"{where}.total_steps", max_total_steps)
+            if "hyperparameters" in entry:
+                given = self.table(entry["hyperparameters"], f"{where}.hyperparameters",
+                                   header=f"[task.agents.{name}.hyperparameters]")
+                resolved["hyperparameters"] = self.plain_value(given, f"{where}.hyperparameters")
+            agents[name] = resolved
+        return TaskSpec(task_id, self.plain_value(kwargs, f"{path}.kwargs"), agents)
 
     def agent(self, table: dict[str, Any], path: str, known: Collection[str] | None,
               max_total_steps: int) -> AgentSpec:
@@ -395,7 +430,7 @@ class _Parser:
               known_agents: Collection[str] | None) -> Suite:
         self.check_keys(document, _TOP_KEYS, "")
         header = self.suite_table(document)
-        tasks = tuple(self.task(table, f"task[{i}]", known_tasks)
+        tasks = tuple(self.task(table, f"task[{i}]", known_tasks, header["max_total_steps"])
                       for i, table in enumerate(self.tables(document, "task", required=True)))
         agents = tuple(self.agent(table, f"agent[{i}]", known_agents, header["max_total_steps"])
                        for i, table in enumerate(self.tables(document, "agent", required=True)))
@@ -408,6 +443,13 @@ class _Parser:
                                      "(use a [[sweep]] to vary its settings)")
         task_ids = [task.id for task in tasks]
         agent_names = [agent.name for agent in agents]
+        for i, task in enumerate(tasks):
+            for name in task.agents:
+                if name not in agent_names:
+                    raise self.error(f"task[{i}].agents.{_toml_key(name)}", name,
+                                     "the name of an [[agent]] of this suite: "
+                                     + ", ".join(map(repr, agent_names)),
+                                     _nearest(name, agent_names))
         sweeps = tuple(self.sweep(table, f"sweep[{i}]", task_ids, agent_names,
                                   header["max_total_steps"])
                        for i, table in enumerate(self.tables(document, "sweep", required=False)))
@@ -609,9 +651,11 @@ def _resolve(suite: Suite, task: TaskSpec, agent: AgentSpec, seed: int,
              point: tuple[tuple[Sweep, Any], ...]) -> dict[str, Any]:
     """The config of one job: the suite's settings with this grid point written in."""
     kwargs = copy.deepcopy(task.kwargs)
-    hyperparameters = copy.deepcopy(agent.hyperparameters)
+    own = task.agents.get(agent.name, {})
+    hyperparameters = {**copy.deepcopy(agent.hyperparameters),
+                       **copy.deepcopy(own.get("hyperparameters", {}))}
     gamma = suite.gamma
-    total_steps = agent.total_steps
+    total_steps = own.get("total_steps", agent.total_steps)
     for sweep, value in point:
         if sweep.target == "task":
             kwargs[sweep.parameter] = copy.deepcopy(value)
@@ -771,6 +815,12 @@ class _Checker:
         for a, agent in enumerate(suite.agents):
             self.hyperparameters(agent.name, agent.hyperparameters,
                                  f"agent[{a}].hyperparameters")
+        by_name = {agent.name: agent for agent in suite.agents}
+        for i, task in enumerate(suite.tasks):
+            for name, own in task.agents.items():
+                self.hyperparameters(name, {**by_name[name].hyperparameters,
+                                            **own.get("hyperparameters", {})},
+                                     f"task[{i}].agents.{_toml_key(name)}.hyperparameters")
         for j, sweep in enumerate(suite.sweeps):
             self.sweep(j, sweep)
         checked: set[str] = set()
@@ -784,6 +834,10 @@ class _Checker:
             point = " ".join(f"{label}={canonical_json(value)}"
                              for label, value in sorted(job.sweep_point.items()))
             path = f"agent[{agents[job.agent_name]}].hyperparameters"
+            task_index = next(i for i, task in enumerate(suite.tasks) if task.id == job.task_id)
+            if job.agent_name in suite.tasks[task_index].agents:
+                path += (f" with task[{task_index}].agents."
+                         f"{_toml_key(job.agent_name)}.hyperparameters")
             if point:
                 path += f" (at {point})"
             self.agent_on_task(job.agent_name, job.agent_hyperparameters, job.task_id,
@@ -909,6 +963,14 @@ def to_toml(suite: Suite) -> str:
         if task.kwargs:
             lines.append("[task.kwargs]")
             lines += [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in task.kwargs.items()]
+        for name, own in task.agents.items():
+            lines.append(f"[task.agents.{_toml_key(name)}]")
+            if "total_steps" in own:
+                lines.append(f"total_steps = {own['total_steps']}")
+            if own.get("hyperparameters"):
+                lines.append(f"[task.agents.{_toml_key(name)}.hyperparameters]")
+                lines += [f"{_toml_key(k)} = {_toml_value(v)}"
+                          for k, v in own["hyperparameters"].items()]
     for agent in suite.agents:
         lines += ["", "[[agent]]", f"name = {_toml_value(agent.name)}",
                   f"total_steps = {agent.total_steps}"]

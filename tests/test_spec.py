@@ -491,3 +491,51 @@ def test_max_total_steps_lets_a_suite_ask_for_more():
     lowered = spec.parse_suite(BASE.replace("seeds = [0]", "seeds = [0]\nmax_total_steps = 10"))
     assert [job.hash for job in spec.expand(lowered)] == \
         [job.hash for job in spec.expand(spec.parse_suite(BASE))]
+
+
+# --- a task's own settings of an agent -----------------------------------------------------------
+
+PER_TASK = CHECKED + """
+[[task]]
+id = "needbench/Gamble-v0"
+[task.agents.tabular-q]
+total_steps = 300
+[task.agents.tabular-q.hyperparameters]
+world_bins = 2
+"""
+
+
+def test_a_tasks_own_agent_settings_reach_only_its_jobs():
+    suite = _checked(PER_TASK)
+    menu, gamble = spec.expand(suite)
+    assert menu.total_steps == 100 and menu.agent_hyperparameters == {"learning_rate": 0.2}
+    # The task's budget replaces the agent's; its hyperparameters are written over the agent's.
+    assert gamble.total_steps == 300
+    assert gamble.agent_hyperparameters == {"learning_rate": 0.2, "world_bins": 2}
+    assert spec.parse_suite(spec.to_toml(suite)) == suite
+    # Without the task's settings the Gamble job is another job (another hash).
+    plain = _checked(CHECKED + '\n[[task]]\nid = "needbench/Gamble-v0"\n')
+    assert spec.expand(plain)[0].hash == menu.hash and spec.expand(plain)[1].hash != gamble.hash
+
+
+@pytest.mark.parametrize("old, new, path, hint", [
+    ("[task.agents.tabular-q]\n", "[task.agents.tabular]\n", "task[1].agents.tabular",
+     "tabular-q"),
+    ("total_steps = 300", "total_step = 300", "task[1].agents.tabular-q.total_step",
+     "total_steps"),
+    ("total_steps = 300", "total_steps = -1", "task[1].agents.tabular-q.total_steps",
+     "max_total_steps"),
+    ("world_bins = 2", "world_bin = 2", "task[1].agents.tabular-q.hyperparameters.world_bin",
+     "world_bins"),
+    ("world_bins = 2", "world_bins = 0", "task[1].agents.tabular-q.hyperparameters.world_bins",
+     "whole number"),
+])
+def test_a_tasks_agent_settings_are_checked_like_the_agents_own(old, new, path, hint):
+    text = PER_TASK.replace(old, new)
+    if old.startswith("[task.agents.tabular-q]"):
+        text = text.replace("[task.agents.tabular-q.hyperparameters]",
+                            "[task.agents.tabular.hyperparameters]")
+    with pytest.raises(spec.SuiteError) as caught:
+        _checked(text)
+    assert caught.value.path == path, caught.value
+    assert hint in str(caught.value)
