@@ -670,8 +670,10 @@ def markdown_table(reference: Reference) -> str:
     mean discounted drive, time in band, return and survival, and the IQM
     [95 % CI] of its normalised scores on discounted drive and return. The
     ranking: agents by the IQM of their normalised discounted-drive score over
-    the tasks they run on, with its stratified bootstrap interval.
+    the tasks they run on, with its stratified bootstrap interval. A task where
+    the reference agent does worse than random on a metric is named in a note.
     """
+    from needbench.benchmarks.report import number
 
     def interval(aggregate: Aggregate) -> str:
         if aggregate.low is None:
@@ -714,6 +716,16 @@ def markdown_table(reference: Reference) -> str:
         header = ["agent", "runs", *(title for title, _ in TABLE_METRICS.values()),
                   "score (drive)", "score (return)"]
         lines += ["", f"**{task_id}**", "", *_markdown_rows(header, rows)]
+    backwards = []
+    for task_id in reference.task_ids():
+        for metric, (title, higher) in SCORED_METRICS.items():
+            base = baseline(reference, task_id, metric)
+            if (base.ceiling > base.floor) != higher:
+                backwards.append(f"{task_id} ({title.split(' (')[0]}: {base.ceiling_agent} "
+                                 f"{number(base.ceiling)}, random {number(base.floor)})")
+    if backwards:
+        lines += ["", "On " + "; ".join(backwards) + " the reference agent does worse than "
+                  "random, so there a higher score means closer to random."]
     ranked = ranking(reference, "discounted_drive")
     return_rank = dict(ranking(reference, "return"))
     rows = [[str(i), label, f"{aggregate.tasks}/{aggregate.of_tasks}", interval(aggregate),

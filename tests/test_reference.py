@@ -248,21 +248,31 @@ def test_scores_are_0_at_random_and_1_at_the_planner_else_the_controller(tiny):
         ref.baseline(loaded, "needbench/Shift-v0", "discounted_drive").floor
 
 
-def test_a_zero_denominator_is_a_clear_error(tiny):
-    loaded = tiny[2]
-    random_drive = {run.seed: run.metrics["discounted_drive"]
-                    for run in loaded.runs_of("needbench/Shift-v0", "random")}
+def _edited(loaded: ref.Reference, task_id: str, agent: str, metric: str, value) -> ref.Reference:
+    """The reference with ``agent``'s ``metric`` on ``task_id`` replaced by value(seed)."""
     runs = tuple(
         ref.ReferenceRun(run.hash, run.task_id, run.agent, run.seed, run.sweep, run.episodes,
                          run.total_steps, run.wall_seconds,
-                         {**run.metrics, "discounted_drive": random_drive[run.seed]})
-        if (run.task_id, run.agent) == ("needbench/Shift-v0", "setpoint-controller") else run
-        for run in loaded.runs)
-    same = ref.Reference(loaded.suite, loaded.protocol, loaded.package_versions,
+                         {**run.metrics, metric: value(run.seed)})
+        if (run.task_id, run.agent) == (task_id, agent) else run for run in loaded.runs)
+    return ref.Reference(loaded.suite, loaded.protocol, loaded.package_versions,
                          loaded.git_revisions, loaded.made, loaded.command, loaded.wall_seconds,
                          loaded.elapsed_seconds, runs, loaded.source)
+
+
+def test_a_zero_denominator_is_a_clear_error_and_a_backward_task_is_named(tiny):
+    loaded = tiny[2]
+    shift = "needbench/Shift-v0"
+    random_drive = {run.seed: run.metrics["discounted_drive"]
+                    for run in loaded.runs_of(shift, "random")}
+    same = _edited(loaded, shift, "setpoint-controller", "discounted_drive", random_drive.get)
     with pytest.raises(ConfigError, match="divides by zero"):
-        ref.baseline(same, "needbench/Shift-v0", "discounted_drive")
+        ref.baseline(same, shift, "discounted_drive")
+    worse = _edited(loaded, shift, "setpoint-controller", "discounted_drive",
+                    lambda seed: random_drive[seed] + 10.0)
+    assert "On needbench/Shift-v0 (discounted drive: setpoint-controller" in \
+        ref.markdown_table(worse)
+    assert "does worse than random" not in ref.markdown_table(loaded)
 
 
 def test_the_aggregate_is_the_iqm_with_a_stratified_bootstrap_interval(tiny):
