@@ -609,7 +609,14 @@ def _is_reference_file(name: str) -> bool:
     ``core``, or a ``.json`` file) rather than another run's folder or store."""
     from needbench.benchmarks.reference import shipped_references
 
-    return name in shipped_references() or name.endswith(".json")
+    shipped = shipped_references()
+    if name in shipped or name.endswith(".json"):
+        return True
+    if not Path(name).exists():
+        raise ConfigError("--reference", name, "another run's folder or results store, a "
+                          "shipped reference (" + (", ".join(shipped) or "none shipped yet")
+                          + ") or a reference .json file")
+    return False
 
 
 def command_compare(args: argparse.Namespace) -> int:

@@ -416,6 +416,8 @@ max_steps = 20
     assert "an agent of your runs: random" in capsys.readouterr().err
     assert main(["compare", str(folder)]) == 2
     assert "--agents" in capsys.readouterr().err
+    assert main(["compare", str(folder), "--reference", "no-such-reference"]) == 2
+    assert "a shipped reference (" in capsys.readouterr().err
 
 
 # ----------------------------------------------------------------------------
