@@ -677,9 +677,14 @@ def command_reference_build(args: argparse.Namespace) -> int:
     argv += ["--suite", args.suite] if args.suite else []
     with _open_store(args.location) as store:
         reference = write_reference(store, args.out, args.suite, command=command_line(argv))
+        failed = store.runs(suite=reference.suite, status="failed")
     tasks = len(reference.task_ids())
     print(f"reference {reference.suite!r}: {len(reference.runs)} runs on {tasks} tasks, "
           f"{reference.wall_seconds:.0f} s of jobs, written to {args.out}")
+    if failed:
+        print(f"needbench: {len(failed)} failed runs of {reference.suite!r} are not in the file "
+              "(rerun them with `needbench run SUITE --out DIR --retry-failed` first)",
+              file=sys.stderr)
     return 0
 
 
