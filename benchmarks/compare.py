@@ -488,8 +488,9 @@ def compare_with_reference(store, reference, metric: str | None = None,
     notes = [
         "Normalised score per task: (x - random) / (reference - random), x a run's mean over "
         "its evaluation episodes, random and reference the means over seeds of the "
-        f"reference's {' and '.join(('random', 'planner (else controller)'))} runs; 0 = random, "
-        "1 = the reference agent, higher is better for both scores.",
+        "reference's random runs and of the better on that metric of its planner and "
+        "controller runs; 0 = random, 1 = that reference agent, higher is better for both "
+        "scores.",
         "Aggregates: IQM over the tasks an agent ran on (tasks k/K) and their runs, with a "
         "95 % stratified bootstrap interval (Agarwal et al. 2021); tasks where an agent is "
         "not applicable are left out of its aggregate.",

@@ -51,8 +51,12 @@ FORMAT_VERSION = 1
 #: Where shipped reference files live: ``<suite>.json``.
 REFERENCE_FOLDER = Path(__file__).resolve().parent / "reference"
 
-#: The floor of a normalised score (0) and the references of its 1, in order of
-#: preference: the first of these with runs on a task sets that task's 1.
+#: The floor of a normalised score (0) and the non-learning references of its 1:
+#: on each task and metric, the better of these two that has runs there. The
+#: planner applies to few tasks, and it maximises the reward it is paid, which
+#: is not always stability: on Lure the reward pays for the sweet's
+#: palatability, so the planner's discounted drive is worse than random's and
+#: the controller's is the task's best non-learning figure.
 FLOOR_AGENT = "random"
 CEILING_AGENTS = ("exact-planner", "setpoint-controller")
 
@@ -516,7 +520,7 @@ class Baseline:
 
 
 def baseline(reference: Reference, task_id: str, metric: str) -> Baseline:
-    """The task's 0 (random) and 1 (planner, else controller) on ``metric``.
+    """The task's 0 (random) and 1 (the better of planner and controller) on ``metric``.
 
     Each is the mean over that agent's runs on the task (one run per seed, no
     sweep point) of the run's mean over its evaluation episodes; runs whose
@@ -539,14 +543,14 @@ def baseline(reference: Reference, task_id: str, metric: str) -> Baseline:
     if floor is None:
         raise ConfigError(f"{where}.{FLOOR_AGENT}", None, f"runs of {FLOOR_AGENT} with a "
                           f"finite {metric} (the 0 of the normalised score)")
-    for agent in CEILING_AGENTS:
-        ceiling = mean_of(agent)
-        if ceiling is not None:
-            break
-    else:
+    higher = SCORED_METRICS[metric][1]
+    candidates = [(mean, agent) for agent in CEILING_AGENTS
+                  if (mean := mean_of(agent)) is not None]
+    if not candidates:
         raise ConfigError(f"{where}.reference agent", None, "runs of "
                           + " or ".join(CEILING_AGENTS) + f" with a finite {metric} (the 1 of "
                           "the normalised score)")
+    ceiling, agent = (max if higher else min)(candidates, key=lambda pair: pair[0])
     if ceiling == floor:
         raise ConfigError(f"{where}.{metric}", ceiling,
                           f"a mean of {agent} different from {FLOOR_AGENT}'s ({floor!r}): "
@@ -698,15 +702,18 @@ def markdown_table(reference: Reference) -> str:
         "",
         "Cells: mean / IQM [95 % CI] over runs (seeds), each run the mean of its evaluation "
         "episodes; 3 significant digits. Discounted drive: lower is better. Normalised "
-        "scores: 0 = random, 1 = the task's reference agent (marked *), from the means over "
-        "seeds; higher is better.",
+        "scores: 0 = random, 1 = the task's best non-learning agent on that metric (marked * "
+        "on the drive, + on the return), from the means over seeds; higher is better.",
     ]
     for task_id in reference.task_ids():
-        base = baseline(reference, task_id, "discounted_drive")
+        drive_base = baseline(reference, task_id, "discounted_drive")
+        return_base = baseline(reference, task_id, "return")
         rows = []
         for label in reference.labels(task_id):
             runs = reference.runs_of(task_id, label)
-            cells = [label + (" *" if label == base.ceiling_agent else ""), str(len(runs))]
+            marks = ("*" if label == drive_base.ceiling_agent else "") \
+                + ("+" if label == return_base.ceiling_agent else "")
+            cells = [f"{label} {marks}" if marks else label, str(len(runs))]
             cells += [_mean_and_iqm([run.metrics.get(key, math.nan) for run in runs], higher)
                       for key, (_, higher) in TABLE_METRICS.items()]
             for scores in (drive_scores, return_scores):
