@@ -1,5 +1,5 @@
 """The ``needbench`` command line: list, describe, run, results, watch, report,
-compare, drive.
+compare, reference, drive.
 
 Exit codes: 0 success; 1 some jobs of a run failed (their tracebacks are in
 the store); 2 bad input (unknown task, agent or suite, an invalid suite file,
@@ -604,30 +604,94 @@ def command_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def _is_reference_file(name: str) -> bool:
+    """Whether ``compare --reference`` names a reference file (a shipped name such as
+    ``core``, or a ``.json`` file) rather than another run's folder or store."""
+    from needbench.benchmarks.reference import shipped_references
+
+    shipped = shipped_references()
+    if name in shipped or name.endswith(".json"):
+        return True
+    if not Path(name).exists():
+        raise ConfigError("--reference", name, "another run's folder or results store, a "
+                          "shipped reference (" + (", ".join(shipped) or "none shipped yet")
+                          + ") or a reference .json file")
+    return False
+
+
 def command_compare(args: argparse.Namespace) -> int:
+    if args.reference is not None and _is_reference_file(args.reference):
+        return _compare_with_reference(args)
     _require_plots()
     from needbench.benchmarks.compare import compare, comparison_figure, format_comparison
     from needbench.benchmarks.figures import save_png
 
+    if args.agents is None:
+        raise ConfigError("--agents", None, "two agents A B of the store (without --agents, "
+                          "only --reference NAME|FILE.json compares every agent)")
     first, second = args.agents
+    metric = args.metric or "return"
     with _open_store(args.location) as store:
         if args.reference is None:
-            comparison = compare(store, first, second, args.metric)
+            comparison = compare(store, first, second, metric)
         else:
             with _open_store(args.reference) as reference:
-                comparison = compare(store, first, second, args.metric, reference)
+                comparison = compare(store, first, second, metric, reference)
         agents = sorted({run["agent"] for run in store.runs(status="done")} | {second})
     if args.json:
         print(comparison.to_json())
     else:
         print(format_comparison(comparison))
     out = Path(args.out) if args.out else \
-        _run_folder(args.location) / f"compare-{first}-{second}-{args.metric}"
+        _run_folder(args.location) / f"compare-{first}-{second}-{metric}"
     out.mkdir(parents=True, exist_ok=True)
     (out / "comparison.json").write_text(comparison.to_json() + "\n", encoding="utf-8")
     save_png(comparison_figure(comparison, agents), out / "comparison.png")
     if not args.json:
         print(f"\nwritten: {out / 'comparison.json'}, {out / 'comparison.png'}")
+    return 0
+
+
+def _compare_with_reference(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.compare import compare_with_reference, format_reference_comparison
+    from needbench.benchmarks.reference import load_reference
+
+    reference = load_reference(args.reference)
+    with _open_store(args.location) as store:
+        comparison = compare_with_reference(store, reference, args.metric,
+                                            tuple(args.agents) if args.agents else None)
+    print(comparison.to_json() if args.json else format_reference_comparison(comparison))
+    out = Path(args.out) if args.out else \
+        _run_folder(args.location) / f"compare-reference-{reference.suite}"
+    _make_folder("--out", out)
+    (out / "comparison.json").write_text(comparison.to_json() + "\n", encoding="utf-8")
+    if not args.json:
+        print(f"\nwritten: {out / 'comparison.json'}")
+    return 0
+
+
+def command_reference_build(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.reference import command_line, write_reference
+
+    argv = ["reference", "build", args.location, "--out", args.out]
+    argv += ["--suite", args.suite] if args.suite else []
+    with _open_store(args.location) as store:
+        reference = write_reference(store, args.out, args.suite, command=command_line(argv))
+        failed = store.runs(suite=reference.suite, status="failed")
+    tasks = len(reference.task_ids())
+    print(f"reference {reference.suite!r}: {len(reference.runs)} runs on {tasks} tasks, "
+          f"{reference.wall_seconds:.0f} s of jobs, written to {args.out}")
+    if failed:
+        print(f"needbench: {len(failed)} failed runs of {reference.suite!r} are not in the file "
+              "(rerun them with `needbench run SUITE --out DIR --retry-failed` first)",
+              file=sys.stderr)
+    return 0
+
+
+def command_reference_table(args: argparse.Namespace) -> int:
+    from needbench.benchmarks.reference import load_reference, markdown_table
+
+    sys.stdout.write(markdown_table(load_reference(args.reference)))
     return 0
 
 
@@ -826,27 +890,63 @@ def build_parser() -> argparse.ArgumentParser:
     report.set_defaults(handler=command_report)
 
     comparing = commands.add_parser(
-        "compare", help="compare two agents: probability of improvement, IQM difference",
+        "compare", help="compare two agents, or your runs with a shipped reference",
         description="Compare two agents of a results store on one metric, per task and over "
         "all tasks both ran: the probability that a run of the first beats a run of the "
         "second, and the difference of their IQMs, each with a 95% bootstrap CI "
         "(Agarwal et al. 2021). Prints a table and writes comparison.json and "
-        "comparison.png.")
+        "comparison.png. With --reference NAME or FILE.json (a reference file, e.g. the "
+        "shipped 'core'), every agent of the store is put beside the reference's agents "
+        "on the tasks both hold: metrics, normalised scores (0 = random, 1 = the planner, "
+        "else the set-point controller), their IQM over tasks, and P(yours > shipped) with "
+        "the IQM difference; the evaluation protocol (task keywords, evaluation episodes, "
+        "discount, seeds) must be the reference's, else exit 2 names what differs.")
     _add_location(comparing)
-    comparing.add_argument("--agents", nargs=2, metavar=("A", "B"), required=True,
-                           help="the two agents, A compared against B")
-    comparing.add_argument("--metric", default="return",
+    comparing.add_argument("--agents", nargs=2, metavar=("A", "B"), default=None,
+                           help="the two agents, A compared against B (required without a "
+                           "reference file; with one: your A against the reference's B only)")
+    comparing.add_argument("--metric", default=None,
                            choices=tuple(COMPARABLE),
-                           help="the metric compared (default: return)")
-    comparing.add_argument("--reference", metavar="RUN", default=None,
+                           help="the metric compared (default: return; with a reference "
+                           "file: discounted_drive or return, default both)")
+    comparing.add_argument("--reference", metavar="RUN|NAME|FILE.json", default=None,
                            help="another run folder or results store: B's runs come from it "
-                           "(only tasks evaluated under the same protocol are compared)")
+                           "(only tasks evaluated under the same protocol are compared); or a "
+                           "shipped reference name (core) or a reference file (.json)")
     comparing.add_argument("--out", metavar="DIR", default=None,
-                           help="folder of comparison.json and comparison.png (default: "
-                           "DIR/compare-A-B-METRIC)")
+                           help="folder of comparison.json (and comparison.png) (default: "
+                           "DIR/compare-A-B-METRIC, or DIR/compare-reference-SUITE)")
     comparing.add_argument("--json", action="store_true",
                            help="print the comparison as JSON instead of a table")
     comparing.set_defaults(handler=command_compare)
+
+    referencing = commands.add_parser(
+        "reference", help="build a reference file from a run, or print its Markdown table",
+        description="Reference results: the per-run scores of a run of a suite in one JSON "
+        "file (benchmarks/reference/<suite>.json ships with needbench), which `needbench "
+        "compare DIR --reference NAME|FILE` reads.")
+    referencing.set_defaults(handler=lambda args: (referencing.print_help(), 0)[1])
+    verbs = referencing.add_subparsers(dest="verb", metavar="VERB")
+    build = verbs.add_parser(
+        "build", help="write the reference file of a run's done runs",
+        description="Write one JSON file of every done run of a suite in a results store: "
+        "task, agent, seed, sweep point, config hash, evaluation episodes and the mean of "
+        "every metric, with the suite's protocol, the needbench versions and git revisions, "
+        "the date, this command and the runs' wall time.")
+    _add_location(build)
+    build.add_argument("--out", metavar="FILE.json", required=True,
+                       help="the file to write, e.g. benchmarks/reference/core.json")
+    build.add_argument("--suite", metavar="NAME", default=None,
+                       help="the suite whose runs to take (needed when the store holds several)")
+    build.set_defaults(handler=command_reference_build)
+    table = verbs.add_parser(
+        "table", help="print a reference's Markdown table (per task and the ranking)",
+        description="Print a reference as Markdown: per task each agent's discounted drive, "
+        "time in band, return and survival (mean / IQM [95% CI]) and normalised scores, then "
+        "the agents ranked by the IQM of their normalised discounted drive.")
+    table.add_argument("reference", metavar="NAME|FILE.json",
+                       help="a shipped reference name (core) or a reference file")
+    table.set_defaults(handler=command_reference_table)
 
     drive = commands.add_parser(
         "drive", help="draw the drive landscape for chosen m and n (no run needed)",
