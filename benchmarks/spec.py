@@ -12,12 +12,13 @@ A suite file (parsed with the standard library's ``tomllib``):
                                       # against a typo that would run for days; default 10**9)
 
     [[task]]                          # one or more
-    id = "needbench/Menu-v0"          # a registered Gymnasium id
+    id = "needbench/Menu-v0"          # a needbench task id ("module:EnvId" with allow_import)
     [task.kwargs]                     # optional: keyword arguments for gymnasium.make
     task_weight = 0.0
 
     [[agent]]                         # one or more
-    name = "tabular-q"                # a registered agent name
+    name = "tabular-q"                # a registry name, built-in or plug-in
+                                      # ("module:Class" with allow_import)
     total_steps = 20000               # learning budget in env steps, in [0, max_total_steps]
     [agent.hyperparameters]           # optional: keyword arguments for make_agent
     learning_rate = 0.1
