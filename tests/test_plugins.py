@@ -264,7 +264,7 @@ import gymnasium
 from needbench.envs import Need
 from needbench.envs.tasks.menu import MenuEnv, MenuVectorEnv
 
-pathlib.Path("imported-tasks").touch()  # shows whether this module's code ran
+pathlib.Path(__file__).with_name("imported-tasks").touch()  # did this module run?
 
 SALT = Need("salt", unit="mmol/L", set_point=140.0, band=5.0, lethal_low=115.0,
             lethal_high=165.0, initial_low=138.0, initial_high=142.0, drain=0.2)
@@ -342,7 +342,7 @@ import numpy as np
 
 from needbench.agents.base import Agent, batch_size
 
-pathlib.Path("imported-agents").touch()  # shows whether this module's code ran
+pathlib.Path(__file__).with_name("imported-agents").touch()  # did this module run?
 
 
 class FirstChoice(Agent):
