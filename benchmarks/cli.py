@@ -64,11 +64,17 @@ def task_ids() -> tuple[str, ...]:
     return needbench.envs.TASK_IDS
 
 
-def resolve_task(name: str) -> str:
-    """A registered task id from an id (``needbench/Menu-v0``) or a short name (``Menu``)."""
+def resolve_task(name: str, allow_import: bool = False) -> str:
+    """A registered task id from an id (``needbench/Menu-v0``) or a short name (``Menu``),
+    or a task of the user's own, ``module:EnvId``, with ``allow_import`` (imports module)."""
+    from needbench.agents.imports import is_import_form
+    from needbench.benchmarks.spec import resolve_task_id
+
     ids = task_ids()
     if name in ids:
         return name
+    if is_import_form(name):
+        return resolve_task_id(name, allow_import=allow_import, path="task")
     short = {task_id.split("/", 1)[-1].rsplit("-v", 1)[0].lower(): task_id for task_id in ids}
     if name.lower() in short:
         return short[name.lower()]
@@ -76,7 +82,8 @@ def resolve_task(name: str) -> str:
 
     near = difflib.get_close_matches(name, list(ids) + sorted(short), n=1)
     hint = f" (did you mean {near[0]!r}?)" if near else ""
-    raise ConfigError("task", name, "a registered task id or short name: " + ", ".join(ids) + hint)
+    raise ConfigError("task", name, "a registered task id or short name: " + ", ".join(ids)
+                      + ", or a task of your own as 'module:EnvId' with --allow-import" + hint)
 
 
 def builtin_suites() -> dict[str, Path]:
@@ -111,12 +118,24 @@ def resolve_suite(name: str) -> Path:
                      + ", ".join(sorted(suites)), near[0] if near else None)
 
 
-def load_suite(name: str):
+def load_suite(name: str, allow_import: bool = False):
     """Parse a suite and check it whole (``benchmarks.spec.load_suite``): task ids, agent
-    names, every keyword, hyperparameter and sweep value, before anything runs."""
+    names, every keyword, hyperparameter and sweep value, before anything runs.
+    ``allow_import`` accepts ``module:`` agents and tasks (importing their modules)."""
     from needbench.benchmarks import spec
 
-    return spec.load_suite(resolve_suite(name))
+    return spec.load_suite(resolve_suite(name), allow_import=allow_import)
+
+
+def allow_imports(args: argparse.Namespace) -> bool:
+    """Whether ``--allow-import`` was given; if so, the current folder joins ``sys.path``
+    (at its end, so a local file never hides an installed module), as ``python -m`` would."""
+    allowed = bool(getattr(args, "allow_import", False))
+    if allowed:
+        from needbench.agents.imports import add_import_paths
+
+        add_import_paths([os.getcwd()])
+    return allowed
 
 
 def _first_line(text: str | None) -> str:
@@ -127,7 +146,12 @@ def _first_line(text: str | None) -> str:
 def _env_class(task_id: str) -> type:
     import gymnasium as gym
 
-    module_name, _, class_name = str(gym.spec(task_id).entry_point).partition(":")
+    from needbench.benchmarks.spec import registered_id
+
+    entry_point = gym.spec(registered_id(task_id)).entry_point
+    if isinstance(entry_point, type):
+        return entry_point
+    module_name, _, class_name = str(entry_point).partition(":")
     return getattr(importlib.import_module(module_name), class_name)
 
 
@@ -167,7 +191,7 @@ def _open_store(location: str):
 # ----------------------------------------------------------------------------
 
 def command_list(args: argparse.Namespace) -> int:
-    from needbench.agents.registry import AGENTS
+    from needbench.agents.registry import AGENTS, agent_source
 
     print("Tasks")
     ids = task_ids()
@@ -177,10 +201,15 @@ def command_list(args: argparse.Namespace) -> int:
     print("\nAgents")
     width = max(len(name) for name in AGENTS)
     for name in AGENTS:
+        source = agent_source(name)
         try:
             about = _first_line(AGENTS[name].__doc__)
         except ImportError as error:
             about = f"(not available: {error})"
+        except ConfigError as error:  # a plug-in that cannot be used
+            about = f"(not usable: {error.allowed})"
+        if source.kind == "plug-in":
+            about = f"{about} [plug-in: {source.label}]"
         print(f"  {name:<{width}}  {about}")
     from needbench.benchmarks.spec import expand
 
@@ -230,7 +259,7 @@ def command_describe(args: argparse.Namespace) -> int:
 
     from needbench.envs.task import TaskConfig
 
-    task_id = resolve_task(args.task)
+    task_id = resolve_task(args.task, allow_imports(args))
     env_class = _env_class(task_id)
     env = gym.make(task_id)
     try:
@@ -296,7 +325,8 @@ def command_run(args: argparse.Namespace) -> int:
     from needbench.benchmarks.store import Store
     from needbench.benchmarks.tensorboard import NO_WRITER_MESSAGE, writer_backend
 
-    suite = load_suite(args.suite)
+    allow_import = allow_imports(args)
+    suite = load_suite(args.suite, allow_import)
     # Every option is checked before the output folder is made.
     check_run_options(args.workers, args.backend, args.address, args.max_retries,
                       args.job_timeout)
@@ -320,7 +350,7 @@ def command_run(args: argparse.Namespace) -> int:
                             max_retries=args.max_retries, progress=not args.quiet,
                             progress_every=None if sys.stdout.isatty()
                             else PROGRESS_LINE_SECONDS, job_timeout=args.job_timeout,
-                            retry_failed=args.retry_failed)
+                            retry_failed=args.retry_failed, allow_import=allow_import)
         hashes = [job.hash for job in summary.jobs]
         failed = [run for run in store.runs(suite=suite.name, status="failed")
                   if run["hash"] in set(hashes)]
@@ -469,12 +499,13 @@ def step_caption(step: int, action: Any, reward: Any) -> str:
     return f"step {step}: action {_action_text(action)}, reward {float(reward):+.4g}"
 
 
-def _watched_agent(args: argparse.Namespace, task_id: str, interactive: bool):
+def _watched_agent(args: argparse.Namespace, task_id: str, interactive: bool,
+                   allow_import: bool = False):
     """The agent ``watch`` shows: loaded from --agent-file, or built (--set) and taught."""
     import gymnasium as gym
 
     from needbench.agents.base import Agent, NotApplicableError, learning_env
-    from needbench.agents.registry import check_agent_name, make_agent
+    from needbench.agents.registry import agent_class
 
     settings = parse_settings(args.set)
     probe = gym.make(task_id)
@@ -492,8 +523,15 @@ def _watched_agent(args: argparse.Namespace, task_id: str, interactive: bool):
             print(f"{agent.name} loaded from {args.agent_file}; it acts as saved "
                   "(no learning first)")
             return agent
-        name = check_agent_name(args.agent)
-        agent = make_agent(name, probe.observation_space, probe.action_space, **settings)
+        name = args.agent
+        cls = agent_class(name, allow_import=allow_import, path="--agent")
+        try:
+            agent = cls(probe.observation_space, probe.action_space, **settings)
+        except (ConfigError, NotApplicableError):
+            raise
+        except Exception as error:  # a class without a hyperparameter dataclass
+            raise ConfigError("--set", " ".join(args.set or []), f"hyperparameters {name} "
+                              f"accepts ({type(error).__name__}: {error})") from None
     except NotApplicableError as error:
         raise _not_applicable(args.agent, task_id, error) from None
     finally:
@@ -538,9 +576,10 @@ def command_watch(args: argparse.Namespace) -> int:
     from needbench.benchmarks.metrics import episode_metrics
     from needbench.envs import rendering
 
-    task_id = resolve_task(args.task)
+    allow_import = allow_imports(args)
+    task_id = resolve_task(args.task, allow_import)
     interactive = sys.stdout.isatty()
-    agent = _watched_agent(args, task_id, interactive)
+    agent = _watched_agent(args, task_id, interactive, allow_import)
     frames = None
     if args.frames is not None:  # made once the agent is ready, so a bad option leaves none
         frames = Path(args.frames)
@@ -595,7 +634,8 @@ def command_report(args: argparse.Namespace) -> int:
 
     out = Path(args.out) if args.out else _run_folder(args.location) / f"report.{args.format}"
     with _open_store(args.location) as store:
-        report = build_report(store, out, format=args.format, suite=args.suite)
+        report = build_report(store, out, format=args.format, suite=args.suite,
+                              allow_import=allow_imports(args))
     folder = report.figures[0].path.parent if report.figures else None
     print(f"report: {report.path} ({len(report.sections) - 1} sections after the run facts, "
           f"{len(report.figures)} figures)")
@@ -759,6 +799,12 @@ def _add_location(parser: argparse.ArgumentParser) -> None:
                         help=f"a run's output folder, or a {STORE_NAME} file")
 
 
+ALLOW_IMPORT_HELP = ("accept agents named module:Class and tasks named module:EnvId (Gymnasium's "
+                     "form), modules importable from the current folder or PYTHONPATH: this "
+                     "imports those modules and runs their code, so give it only for code you "
+                     "trust (built-in and installed plug-in agents need no flag)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     from needbench.benchmarks.compare import COMPARABLE
 
@@ -780,6 +826,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Show a task's observation and action spaces, its needs (set points, "
         "comfort bands, lethal bounds, units) and its default keyword arguments.")
     describe.add_argument("task", metavar="TASK", help="task id or short name, e.g. Menu")
+    describe.add_argument("--allow-import", action="store_true", help=ALLOW_IMPORT_HELP)
     describe.set_defaults(handler=command_describe)
 
     run = commands.add_parser(
@@ -789,7 +836,9 @@ def build_parser() -> argparse.ArgumentParser:
         "Rerunning with "
         "the same --out skips the jobs already done.")
     run.add_argument("suite", metavar="SUITE|FILE",
-                     help="a built-in suite name (see `needbench list`) or a suite TOML file")
+                     help="a built-in suite name (see `needbench list`) or a suite TOML file; "
+                     "its agents are registry names (built-in or installed plug-ins), its "
+                     "tasks needbench ids, unless --allow-import")
     run.add_argument("--out", metavar="DIR", help="output folder (default: results/<suite name>)"
                      f"; holds {STORE_NAME}, {CSV_NAME} and {TENSORBOARD_NAME}/")
     run.add_argument("--workers", metavar="N", type=_positive, default=None,
@@ -813,7 +862,8 @@ def build_parser() -> argparse.ArgumentParser:
                      help="reruns of a job whose worker process died or was lost (default: 2)")
     run.add_argument("--job-timeout", metavar="SECONDS", type=_positive_seconds, default=None,
                      help="stop a job running longer than this and record it as failed "
-                     "(local backend; default: no limit)")
+                     "(local and Ray backends; default: no limit)")
+    run.add_argument("--allow-import", action="store_true", help=ALLOW_IMPORT_HELP)
     run.add_argument("--retry-failed", action="store_true",
                      help="run only the jobs the store holds as failed (jobs never run are "
                      "left for a plain rerun)")
@@ -851,7 +901,8 @@ def build_parser() -> argparse.ArgumentParser:
         "and time in band.")
     watch.add_argument("task", metavar="TASK", help="task id or short name, e.g. Menu")
     who = watch.add_mutually_exclusive_group(required=True)
-    who.add_argument("--agent", metavar="NAME", help="registered agent name")
+    who.add_argument("--agent", metavar="NAME", help="registered agent name (built-in or "
+                     "plug-in), or module:Class with --allow-import")
     who.add_argument("--agent-file", metavar="FILE", default=None,
                      help="an agent file (Agent.save; `run --save-agents` keeps one per "
                      "run) to replay as it is, without learning")
@@ -870,6 +921,7 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--frames", metavar="DIR", default=None,
                        help="also write every frame as a PNG image (rgb_array, captioned "
                        "with the step, action and reward) into DIR")
+    watch.add_argument("--allow-import", action="store_true", help=ALLOW_IMPORT_HELP)
     watch.set_defaults(handler=command_watch)
 
     report = commands.add_parser(
@@ -887,6 +939,9 @@ def build_parser() -> argparse.ArgumentParser:
                         help="html (default), or md for a Markdown summary linking the PNGs")
     report.add_argument("--suite", metavar="NAME", default=None,
                         help="only the runs of this suite (default: every run of the store)")
+    report.add_argument("--allow-import", action="store_true",
+                        help="make tasks named module:EnvId for their figures (imports those "
+                        "modules and runs their code)")
     report.set_defaults(handler=command_report)
 
     comparing = commands.add_parser(
@@ -968,7 +1023,27 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _show_warning(shown: Any, message, category, filename, lineno, file=None,
+                  line=None) -> None:
+    """needbench's plug-in warnings as one line on stderr; others as before (``shown``)."""
+    from needbench.agents.registry import PluginWarning
+
+    if issubclass(category, PluginWarning):
+        print(f"needbench: warning: {message}", file=sys.stderr if file is None else file)
+    else:
+        shown(message, category, filename, lineno, file, line)
+
+
 def main(argv: list[str] | None = None) -> int:
+    import functools
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.showwarning = functools.partial(_show_warning, warnings.showwarning)
+        return _main(argv)
+
+
+def _main(argv: list[str] | None) -> int:
     parser = build_parser()
     try:
         args = parser.parse_args(argv)

@@ -538,7 +538,7 @@ class Report:
 
 
 def build_report(store, out: str | Path, *, format: str = "html",
-                 suite: str | None = None) -> Report:
+                 suite: str | None = None, allow_import: bool = False) -> Report:
     """Write the report of ``store`` to ``out`` (HTML or Markdown) and its figures beside it.
 
     Args:
@@ -546,7 +546,11 @@ def build_report(store, out: str | Path, *, format: str = "html",
         out: the page's file; figures go to ``<out stem>-figures/`` beside it.
         format: 'html' or 'md'.
         suite: only the runs of this suite (default: every run in the store).
+        allow_import: make tasks named ``module:EnvId`` (their figures need
+            the task, and making it imports the module and runs its code);
+            without it such a store is a ConfigError saying so.
     """
+    from needbench.agents.imports import is_import_form, require_import_allowed
     from needbench.benchmarks.figures import PALETTE, agent_colours
 
     check_choice("format", format, FORMATS)
@@ -555,6 +559,10 @@ def build_report(store, out: str | Path, *, format: str = "html",
     tasks = task_results(store, suite)
     if not tasks:
         raise ConfigError("results", str(out), "a store with at least one run done")
+    for task in tasks:
+        if is_import_form(task.task_id):
+            require_import_allowed("task", task.task_id, "task id", allow_import,
+                                   context=str(store.path))
     agents = sorted({series.agent for task in tasks for series in task.series})
     styles = agent_colours(agents)
     facts = run_facts(store, suite)

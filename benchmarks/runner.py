@@ -80,8 +80,8 @@ from needbench.agents.base import (
 from needbench.benchmarks.evaluate import MODES, evaluate, evaluation_metrics
 from needbench.benchmarks.lock import ResultsLock
 from needbench.benchmarks.metrics import summarise
-from needbench.benchmarks.spec import Job, Suite, expand
-from needbench.benchmarks.store import JobResult, Store
+from needbench.benchmarks.spec import Job, Suite, expand, resolve_task_id
+from needbench.benchmarks.store import JobResult, Store, software_versions
 from needbench.benchmarks.tensorboard import RunLogger, run_folder_name
 from needbench.envs.errors import ConfigError, check_choice, check_positive
 
@@ -107,6 +107,13 @@ class RunSettings:
         agents_root: folder where each job saves its trained agent
             (``Agent.save``, one ``<label>.<hash digits>.npz`` file per job,
             the path recorded with the run), or None to keep none.
+        allow_import: whether jobs may import a user's module for an agent
+            named ``module:Class`` or a task named ``module:EnvId``
+            (``--allow-import``); :func:`run_suite` sets it from its own keyword.
+        import_paths: folders each worker appends to ``sys.path`` before a
+            job, so it can import what the driver imported: the folders of
+            those modules and of the plug-in distributions the suite uses
+            (a Ray worker does not share the driver's ``sys.path``).
     """
 
     tensorboard_root: str | None = None
@@ -114,6 +121,8 @@ class RunSettings:
     evaluation_mode: str = "vector"
     git_revision: str | None = None
     agents_root: str | None = None
+    allow_import: bool = False
+    import_paths: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if isinstance(self.keep_traces, bool) or not isinstance(self.keep_traces, int) \
@@ -179,7 +188,9 @@ def run_job(config: dict[str, Any], job_hash: str,
         evaluated, and the result names its file.
     """
     import needbench.envs  # noqa: F401  (registers the tasks in this process)
-    from needbench.agents.registry import AGENTS, make_agent
+    from needbench.agents.imports import add_import_paths
+    from needbench.agents.registry import agent_class as resolve_agent
+    from needbench.agents.registry import discover_plugins
 
     limit_threads()
     started = time.time()
@@ -187,14 +198,19 @@ def run_job(config: dict[str, Any], job_hash: str,
     logger: RunLogger | None = None
     env = None
     agent_file: Path | None = None
+    environment = dict(software_versions())
     try:
+        if add_import_paths(settings.import_paths):
+            discover_plugins(refresh=True)  # plug-ins in the folders just added
         job = Job(config)
-        agent_class = AGENTS[job.agent_name]
+        resolve_task_id(job.task_id, allow_import=settings.allow_import, path="task.id")
+        agent_class = resolve_agent(job.agent_name, allow_import=settings.allow_import,
+                                    path="agent.name")
+        environment.update(origin_record(job))
         arguments = job.task_arguments
         spaces_env = make_task_vector_env(job.task_id, 1, agent_class.autoreset_mode, arguments)
         try:
-            agent = make_agent(job.agent_name, *env_spaces(spaces_env),
-                               **job.agent_hyperparameters)
+            agent = agent_class(*env_spaces(spaces_env), **job.agent_hyperparameters)
         except NotApplicableError as rejection:
             return NotApplicable(job_hash, config, str(rejection), rejection.allowed)
         finally:
@@ -240,7 +256,31 @@ def run_job(config: dict[str, Any], job_hash: str,
                      error=error, episodes=episodes,
                      curves=list(logger.curves) if logger is not None else [],
                      traces=traces[:settings.keep_traces], git_revision=settings.git_revision,
-                     agent_file=None if agent_file is None else str(agent_file))
+                     agent_file=None if agent_file is None else str(agent_file),
+                     environment=environment)
+
+
+def origin_record(job: Job) -> dict[str, str | None]:
+    """Where a job's agent and task come from, for its run's ``environment`` record.
+
+    A plug-in agent adds ``agent_package`` (the distribution's name) and the
+    distribution's version under its own name, as the recorded libraries are;
+    a ``module:Class`` agent or a ``module:EnvId`` task adds the file of the
+    module (``agent_module``, ``task_module``). Built-ins add nothing.
+    """
+    from needbench.agents.imports import is_import_form
+    from needbench.agents.registry import agent_source
+
+    record: dict[str, str | None] = {}
+    source = agent_source(job.agent_name)
+    if source.kind == "plug-in":
+        record["agent_package"] = source.package
+        record[str(source.package)] = source.version
+    for key, name in (("agent_module", job.agent_name), ("task_module", job.task_id)):
+        if is_import_form(name):
+            module = sys.modules.get(name.partition(":")[0])
+            record[key] = getattr(module, "__file__", None)
+    return record
 
 
 def agent_file_name(label: str, job_hash: str) -> str:
@@ -403,10 +443,8 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
                                             job_timeout):
                             timed_out.add(job.hash)
                             _kill(started[job.hash][0])
-                            on_result(failed_result(
-                                job, f"timed out: the job ran longer than job_timeout = "
-                                f"{job_timeout:g} s, and its worker process was stopped",
-                                submitted, settings))
+                            on_result(failed_result(job, timeout_text(job_timeout),
+                                                    submitted, settings))
             except BaseException:
                 pool.shutdown(wait=False, cancel_futures=True)
                 raise
@@ -433,6 +471,12 @@ def _run_local(jobs: Sequence[Job], settings: RunSettings, workers: int, max_ret
                     "have run out of memory or crashed in native code", submitted, settings))
             else:
                 remaining.append(job)
+
+
+def timeout_text(job_timeout: float) -> str:
+    """The error recorded for a job stopped by ``job_timeout`` (both backends)."""
+    return (f"timed out: the job ran longer than job_timeout = {job_timeout:g} s, and its "
+            "worker process was stopped")
 
 
 def _exit_code(processes: Mapping[int, Any], started: Mapping[str, tuple[int, float]],
@@ -468,9 +512,44 @@ def import_ray() -> Any:
                           "'needbench[cluster]')") from error
 
 
+class _StartBoard:
+    """A Ray actor where each job notes that it has started (for ``job_timeout``).
+
+    ``started`` counts the attempts of each job, so the driver restarts its
+    clock when Ray runs a job again after losing its worker.
+    """
+
+    def __init__(self) -> None:
+        self.attempts: dict[str, int] = {}
+
+    def start(self, job_hash: str) -> None:
+        self.attempts[job_hash] = self.attempts.get(job_hash, 0) + 1
+
+    def started(self) -> dict[str, int]:
+        return dict(self.attempts)
+
+
+def _run_noting_start(board: Any, job_function: JobFunction, config: dict[str, Any],
+                      job_hash: str, settings: RunSettings) -> JobResult | NotApplicable:
+    """A Ray task: note on the board that this job has started, then run it."""
+    import ray
+
+    ray.get(board.start.remote(job_hash))
+    return job_function(config, job_hash, settings)
+
+
 def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: str | None,
              max_retries: int, job_function: JobFunction,
-             on_result: ResultSink, on_idle: Callable[[], None] = lambda: None) -> None:
+             on_result: ResultSink, on_idle: Callable[[], None] = lambda: None,
+             job_timeout: float | None = None) -> None:
+    """Run jobs as Ray remote tasks.
+
+    With ``job_timeout``, each task first notes its start on a small actor
+    (:class:`_StartBoard`); a job running longer than ``job_timeout`` seconds
+    from the moment the driver sees that note is cancelled with
+    ``ray.cancel(force=True)``, which kills its worker process, and is
+    recorded as failed at once; the other jobs go on.
+    """
     ray = import_ray()
     owned = not ray.is_initialized()
     if owned:
@@ -483,13 +562,23 @@ def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: 
         else:
             ray.init(num_cpus=workers, include_dashboard=False)
     pending: list[Any] = []
+    board = None
     try:
-        remote = ray.remote(num_cpus=1, max_retries=max_retries)(job_function)
         submitted = time.time()
-        by_reference = {remote.remote(job.config, job.hash, settings): job for job in jobs}
+        if job_timeout is None:
+            remote = ray.remote(num_cpus=1, max_retries=max_retries)(job_function)
+            by_reference = {remote.remote(job.config, job.hash, settings): job for job in jobs}
+        else:
+            board = ray.remote(num_cpus=0)(_StartBoard).remote()
+            remote = ray.remote(num_cpus=1, max_retries=max_retries)(_run_noting_start)
+            by_reference = {remote.remote(board, job_function, job.config, job.hash, settings):
+                            job for job in jobs}
         pending = list(by_reference)
+        # hash -> (attempt, when the driver first saw that attempt start)
+        seen: dict[str, tuple[int, float]] = {}
         while pending:
-            ready, pending = ray.wait(pending, num_returns=1, timeout=1.0)
+            ready, pending = ray.wait(pending, num_returns=1, timeout=1.0 if board is None
+                                      else min(1.0, job_timeout / 4))
             on_idle()
             for reference in ready:
                 job = by_reference[reference]
@@ -498,11 +587,26 @@ def _run_ray(jobs: Sequence[Job], settings: RunSettings, workers: int, address: 
                 except Exception:
                     result = failed_result(job, traceback.format_exc(), submitted, settings)
                 on_result(result)
+            if board is not None and pending:
+                now = time.monotonic()
+                for job_hash, attempt in ray.get(board.started.remote()).items():
+                    if seen.get(job_hash, (0, 0.0))[0] != attempt:
+                        seen[job_hash] = (attempt, now)
+                overdue = [reference for reference in pending
+                           if by_reference[reference].hash in seen
+                           and now - seen[by_reference[reference].hash][1] > job_timeout]
+                for reference in overdue:
+                    ray.cancel(reference, force=True)
+                    pending.remove(reference)
+                    on_result(failed_result(by_reference[reference], timeout_text(job_timeout),
+                                            submitted, settings))
     except BaseException:
         for reference in pending:
             ray.cancel(reference, force=True)
         raise
     finally:
+        if board is not None:
+            ray.kill(board)
         if owned:
             ray.shutdown()
 
@@ -670,17 +774,13 @@ def check_run_options(workers: int | None, backend: str, address: str | None,
     """(workers, max_retries) after checking every option of :func:`run_suite`.
 
     Raises ConfigError for a bad value, an address without the Ray backend,
-    a job timeout with it, or the Ray backend without Ray installed.
+    or the Ray backend without Ray installed.
     """
     check_choice("backend", backend, BACKENDS)
     workers = _check_whole("workers", (os.cpu_count() or 1) if workers is None else workers, 1)
     max_retries = _check_whole("max_retries", max_retries, 0)
     if job_timeout is not None:
         check_positive("job_timeout", job_timeout)
-        if backend != "local":
-            raise ConfigError("job_timeout", job_timeout,
-                              "no job timeout unless backend is 'local' (Ray jobs run to "
-                              "the end)")
     if address is not None and backend != "ray":
         raise ConfigError("address", address, "no address unless backend is 'ray'")
     if backend == "ray":
@@ -712,7 +812,7 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
               settings: RunSettings | None = None, max_retries: int = 2,
               progress: Progress | bool = False, progress_every: float | None = None,
               job_function: JobFunction = run_job, job_timeout: float | None = None,
-              retry_failed: bool = False) -> RunSummary:
+              retry_failed: bool = False, allow_import: bool = False) -> RunSummary:
     """Run every job of ``suite`` not yet done in ``store``, recording each as it finishes.
 
     The run holds the store's lock (:class:`~needbench.benchmarks.lock.ResultsLock`)
@@ -735,20 +835,59 @@ def run_suite(suite: Suite, store: Store, *, workers: int | None = None,
         job_function: what runs one job (a module-level function with the
             signature of :func:`run_job`, picklable by reference).
         job_timeout: seconds a job may run before its worker is stopped and
-            it is recorded as failed (backend 'local'); None for no limit.
+            it is recorded as failed (either backend); None for no limit.
         retry_failed: run only the jobs the store holds as failed (jobs
             never run are left for a plain rerun; see ``RunSummary.left``).
+        allow_import: let the workers import the user's modules behind agents
+            named ``module:Class`` and tasks named ``module:EnvId`` (which runs
+            their code; the suite must have been loaded with the same
+            permission, ``load_suite(..., allow_import=True)``).
 
     Raises:
         ConfigError: for a bad argument, backend 'ray' without Ray installed,
-            or a store another run holds or that cannot be written.
+            a ``module:`` name without ``allow_import``, or a store another
+            run holds or that cannot be written.
     """
     workers, max_retries = check_run_options(workers, backend, address, max_retries,
                                              job_timeout)
     settings = settings if settings is not None else RunSettings()
+    settings = worker_settings(suite, settings, allow_import)
     with ResultsLock(store.path):
         return _run_locked(suite, store, workers, backend, address, settings, max_retries,
                            progress, progress_every, job_function, job_timeout, retry_failed)
+
+
+def worker_settings(suite: Suite, settings: RunSettings, allow_import: bool) -> RunSettings:
+    """``settings`` with what the workers need to find the suite's own agents and tasks.
+
+    Raises ImportNotAllowed for a ``module:`` agent or task without
+    ``allow_import``. Adds the folders of the imported modules and of the
+    plug-in distributions the suite uses to ``import_paths``.
+    """
+    import dataclasses
+
+    from needbench.agents.imports import is_import_form, module_root, require_import_allowed
+    from needbench.agents.registry import agent_source
+
+    allow_import = allow_import or settings.allow_import
+    folders: list[str] = list(settings.import_paths)
+    for i, task in enumerate(suite.tasks):
+        if is_import_form(task.id):
+            require_import_allowed(f"task[{i}].id", task.id, "task id", allow_import,
+                                   context=suite.source)
+            folders.append(module_root(task.id.partition(":")[0]) or "")
+    for a, agent in enumerate(suite.agents):
+        if is_import_form(agent.name):
+            require_import_allowed(f"agent[{a}].name", agent.name, "agent name", allow_import,
+                                   context=suite.source)
+        try:
+            source = agent_source(agent.name)
+        except KeyError:
+            continue  # an unknown name: the job reports it
+        if source.folder:
+            folders.append(source.folder)
+    folders = [folder for folder in dict.fromkeys(folders) if folder]
+    return dataclasses.replace(settings, allow_import=allow_import, import_paths=tuple(folders))
 
 
 def _run_locked(suite: Suite, store: Store, workers: int, backend: str, address: str | None,
@@ -788,7 +927,7 @@ def _run_locked(suite: Suite, store: Store, workers: int, backend: str, address:
                        progress.tick, job_timeout)
         elif pending:
             _run_ray(pending, settings, workers, address, max_retries, job_function, record,
-                     progress.tick)
+                     progress.tick, job_timeout)
     finally:
         progress.close()
         summary.wall_seconds = time.perf_counter() - clock

@@ -12,7 +12,7 @@ A suite file (parsed with the standard library's ``tomllib``):
                                       # against a typo that would run for days; default 10**9)
 
     [[task]]                          # one or more
-    id = "needbench/Menu-v0"          # a registered Gymnasium id
+    id = "needbench/Menu-v0"          # a needbench task id ("module:EnvId" with allow_import)
     [task.kwargs]                     # optional: keyword arguments for gymnasium.make
     task_weight = 0.0
     [task.agents.tabular-q]           # optional: this task's settings of a suite agent,
@@ -21,7 +21,8 @@ A suite file (parsed with the standard library's ``tomllib``):
     world_bins = 4
 
     [[agent]]                         # one or more
-    name = "tabular-q"                # a registered agent name
+    name = "tabular-q"                # a registry name, built-in or plug-in
+                                      # ("module:Class" with allow_import)
     total_steps = 20000               # learning budget in env steps, in [0, max_total_steps]
     [agent.hyperparameters]           # optional: keyword arguments for make_agent
     learning_rate = 0.1
@@ -71,6 +72,7 @@ from typing import Any
 
 from needbench.agents.base import MAX_SEED
 from needbench.agents.curves import DEFAULT_DISCOUNT
+from needbench.agents.imports import is_import_form, require_import_allowed, split_import_form
 from needbench.envs.errors import ConfigError
 
 SWEEP_TARGETS = ("task", "agent", "gamma")
@@ -230,8 +232,9 @@ def _join(path: str, key: str) -> str:
 class _Parser:
     """Reads one suite document; every check raises SuiteError naming ``source``."""
 
-    def __init__(self, source: str):
+    def __init__(self, source: str, allow_import: bool = False):
         self.source = source
+        self.allow_import = allow_import
 
     def error(self, path: str, value: Any, allowed: str, suggestion: str | None = None):
         return SuiteError(self.source, path, value, allowed, suggestion)
@@ -307,6 +310,14 @@ class _Parser:
         return value
 
     def name(self, value: str, path: str, known: Collection[str] | None, what: str) -> str:
+        if known is not None and is_import_form(value):
+            # module:Class (an agent) or module:EnvId (a task): imports the user's code.
+            try:
+                split_import_form(path, value, attribute=what == "agent name")
+                require_import_allowed(path, value, what, self.allow_import)
+            except ConfigError as error:
+                raise self.error(error.path, error.value, error.allowed) from None
+            return value
         if known is not None and value not in known:
             raise self.error(path, value, f"a registered {what}: {', '.join(sorted(known))}",
                              _nearest(value, known))
@@ -492,7 +503,8 @@ def _read(source: str | Path) -> tuple[str, str]:
 
 
 def parse_suite(source: str | Path, known_tasks: Collection[str] | None = None,
-                known_agents: Collection[str] | None = None) -> Suite:
+                known_agents: Collection[str] | None = None, *,
+                allow_import: bool = False) -> Suite:
     """Parse and validate a suite from a file path or from TOML text.
 
     Args:
@@ -501,6 +513,10 @@ def parse_suite(source: str | Path, known_tasks: Collection[str] | None = None,
             (None skips the check).
         known_agents: registered agent names to check ``agent[i].name`` against
             (None skips the check).
+        allow_import: accept, when names are checked, agents named
+            ``module:Class`` and tasks named ``module:EnvId``, whose use imports
+            the user's module and runs its code (:mod:`needbench.agents.imports`);
+            without it they are a SuiteError saying so.
 
     Raises:
         SuiteError: for any problem, naming the file, key path, value and what is allowed.
@@ -510,7 +526,7 @@ def parse_suite(source: str | Path, known_tasks: Collection[str] | None = None,
         document = tomllib.loads(text)
     except tomllib.TOMLDecodeError as error:
         raise SuiteError(name, "toml syntax", str(error), "valid TOML") from error
-    return _Parser(name).suite(document, known_tasks, known_agents)
+    return _Parser(name, allow_import).suite(document, known_tasks, known_agents)
 
 
 # ----------------------------------------------------------------------------
@@ -699,12 +715,67 @@ def expand(suite: Suite) -> list[Job]:
 # Checking a suite whole, before anything runs
 # ----------------------------------------------------------------------------
 
+def registered_id(task_id: str) -> str:
+    """The Gymnasium registry id of a task id: ``EnvId`` of ``module:EnvId``, else itself."""
+    return task_id.partition(":")[2] if is_import_form(task_id) else task_id
+
+
+def resolve_task_id(task_id: str, *, allow_import: bool = False, path: str = "task") -> str:
+    """Check a task id a suite or the command line names, importing its module if need be.
+
+    A registered needbench id passes as it is. A ``module:EnvId`` id
+    (Gymnasium's form: importing ``module`` registers ``EnvId``) needs
+    ``allow_import``; the module is imported here, and ``EnvId`` must then be
+    registered, with a native vector env (``vector_entry_point``) of a needbench
+    task (a ``NeedVectorEnv``: the harness reads needs, bands and drives from
+    its core). Returns ``task_id``.
+
+    Raises:
+        ConfigError: naming ``path`` (an ImportNotAllowed without ``allow_import``).
+    """
+    import gymnasium as gym
+
+    import needbench.envs
+
+    if not is_import_form(task_id):
+        if task_id not in needbench.envs.TASK_IDS:
+            raise ConfigError(path, task_id, "a registered task id: "
+                              + ", ".join(needbench.envs.TASK_IDS)
+                              + ", or a task of your own as 'module:EnvId' with --allow-import"
+                              + _hint(task_id, needbench.envs.TASK_IDS))
+        return task_id
+    module_name, env_id = split_import_form(path, task_id, attribute=False)
+    require_import_allowed(path, task_id, "task id", allow_import)
+    from needbench.agents.imports import import_user_module
+
+    import_user_module(path, task_id, module_name)
+    if env_id not in gym.registry:
+        raise ConfigError(path, task_id, f"an id that module {module_name!r} registers with "
+                          f"gymnasium.register ({env_id!r} is not registered after importing it)")
+    from needbench.envs.task import NeedVectorEnv
+
+    spec = gym.spec(env_id)
+    vector = spec.vector_entry_point
+    if isinstance(vector, str):
+        try:
+            vector = gym.envs.registration.load_env_creator(vector)
+        except Exception as error:
+            raise ConfigError(path, task_id, f"a vector_entry_point that loads "
+                              f"({type(error).__name__}: {error})") from None
+    if not (isinstance(vector, type) and issubclass(vector, NeedVectorEnv)):
+        raise ConfigError(path, task_id, "a needbench task: registered with a "
+                          "vector_entry_point that is a NeedVectorEnv subclass (found "
+                          f"{spec.vector_entry_point!r}), since the harness reads the "
+                          "needs, bands and drive from its core")
+    return task_id
+
+
 def _env_class(task_id: str) -> type | None:
     import importlib
 
     import gymnasium as gym
 
-    entry_point = gym.spec(task_id).entry_point
+    entry_point = gym.spec(registered_id(task_id)).entry_point
     if not isinstance(entry_point, str):
         return entry_point if isinstance(entry_point, type) else None
     module_name, _, class_name = entry_point.partition(":")
@@ -727,9 +798,28 @@ def _keyword_path(path: str, kwargs: Mapping[str, Any]) -> str:
 class _Checker:
     """Runs each task's and agent's own checks on a parsed suite; raises SuiteError."""
 
-    def __init__(self, suite: Suite):
+    def __init__(self, suite: Suite, allow_import: bool = False):
         self.suite = suite
         self.source = suite.source
+        self.allow_import = allow_import
+        self.classes: dict[str, type] = {}
+
+    def resolve(self) -> None:
+        """Every task id and agent class, importing the user's modules (with allow_import)."""
+        from needbench.agents.registry import agent_class
+
+        for i, task in enumerate(self.suite.tasks):
+            try:
+                resolve_task_id(task.id, allow_import=self.allow_import, path=f"task[{i}].id")
+            except ConfigError as error:
+                raise self.error(error.path, error.value, error.allowed) from None
+        for a, agent in enumerate(self.suite.agents):
+            try:
+                self.classes[agent.name] = agent_class(agent.name, allow_import=self.allow_import,
+                                                       path=f"agent[{a}].name")
+            except ConfigError as error:
+                path = error.path if error.path.startswith("agent[") else f"agent[{a}].name"
+                raise self.error(path, error.value, error.allowed) from None
 
     def error(self, path: str, value: Any, allowed: str) -> SuiteError:
         return SuiteError(self.source, path, value, allowed)
@@ -775,10 +865,13 @@ class _Checker:
                         blame: str | None = None) -> None:
         """The agent's own hyperparameter dataclass, with its checks."""
         from needbench.agents.base import build_hyperparameters
-        from needbench.agents.registry import AGENTS
+        from needbench.agents.registry import hyperparameter_schema
 
+        schema = hyperparameter_schema(self.classes[name])
+        if schema is None:
+            return  # no dataclass: checked by building the agent (agent_on_task)
         try:
-            build_hyperparameters(AGENTS[name].Hyperparameters, given, name)
+            build_hyperparameters(schema, given, name)
         except ConfigError as error:
             field_path = error.path.removeprefix(f"{name}.")
             if blame is None:
@@ -792,9 +885,8 @@ class _Checker:
                       kwargs: Mapping[str, Any], path: str) -> None:
         """Build the agent for the task's spaces and let it check the task (``check_env``)."""
         from needbench.agents.base import NotApplicableError, env_spaces, make_task_vector_env
-        from needbench.agents.registry import AGENTS
 
-        agent_class = AGENTS[name]
+        agent_class = self.classes[name]
         env = make_task_vector_env(task_id, 1, agent_class.autoreset_mode, task_arguments(kwargs))
         try:
             agent = agent_class(*env_spaces(env), **hyperparameters)
@@ -804,11 +896,16 @@ class _Checker:
         except ConfigError as error:
             raise self.error(path, error.value,
                              f"{error.allowed} (for {task_id}: {error.path})") from None
+        except Exception as error:  # a class without a hyperparameter dataclass rejects them
+            raise self.error(path, dict(hyperparameters), f"hyperparameters {name} accepts "
+                             f"when built for {task_id} ({type(error).__name__}: {error})"
+                             ) from None
         finally:
             env.close()
 
     def run(self) -> None:
         suite = self.suite
+        self.resolve()
         for i, task in enumerate(suite.tasks):
             self.keyword_names(task.id, task.kwargs, f"task[{i}].kwargs")
             self.make_task(task.id, task.kwargs, f"task[{i}].kwargs")
@@ -844,7 +941,7 @@ class _Checker:
                                job.task_kwargs, path)
 
     def sweep(self, j: int, sweep: Sweep) -> None:
-        from needbench.agents.registry import AGENTS
+        from needbench.agents.registry import hyperparameter_schema
 
         suite = self.suite
         if sweep.target == "task":
@@ -867,7 +964,10 @@ class _Checker:
             for a, agent in enumerate(suite.agents):
                 if not sweep.applies_to("", agent.name):
                     continue
-                known = [f.name for f in dataclass_fields(AGENTS[agent.name].Hyperparameters)]
+                schema = hyperparameter_schema(self.classes[agent.name])
+                if schema is None:
+                    continue  # no dataclass to check against: the pairs' builds check it
+                known = [f.name for f in dataclass_fields(schema)]
                 if sweep.parameter not in known:
                     allowed = ", ".join(["total_steps", *known])
                     raise SuiteError(self.source, f"sweep[{j}].parameter", sweep.parameter,
@@ -881,7 +981,7 @@ class _Checker:
                                          blame=f"sweep[{j}].values[{k}]")
 
 
-def check_suite(suite: Suite) -> Suite:
+def check_suite(suite: Suite, *, allow_import: bool = False) -> Suite:
     """Check a parsed suite whole, with each task's and each agent's own checkers.
 
     Every task's keywords (names with the task's argument checker, values by
@@ -892,21 +992,34 @@ def check_suite(suite: Suite) -> Suite:
     an agent does not handle at all are left to the runner, which lists them
     as not applicable. Returns the suite.
 
+    With ``allow_import``, agents named ``module:Class`` and tasks named
+    ``module:EnvId`` are imported here (their modules' code runs) and checked
+    the same way; an agent class without a hyperparameter dataclass has its
+    hyperparameters checked by building it for each task. Without it, such
+    names are a SuiteError saying that they would import code.
+
     Raises:
         SuiteError: naming the file, the key path (``task[0].kwargs.max_step``),
             the bad value and what is allowed.
     """
-    _Checker(suite).run()
+    _Checker(suite, allow_import).run()
     return suite
 
 
-def load_suite(source: str | Path) -> Suite:
-    """Parse a suite against the registries and check it whole (:func:`check_suite`)."""
+def load_suite(source: str | Path, *, allow_import: bool = False) -> Suite:
+    """Parse a suite against the registries and check it whole (:func:`check_suite`).
+
+    ``allow_import=True`` accepts agents named ``module:Class`` and tasks named
+    ``module:EnvId``: it imports those modules, running their code (the
+    command line's ``--allow-import``). Built-in agents and tasks and installed
+    plug-in agents need no permission.
+    """
     import needbench.envs
     from needbench.agents.registry import AGENTS
 
-    suite = parse_suite(source, known_tasks=needbench.envs.TASK_IDS, known_agents=list(AGENTS))
-    return check_suite(suite)
+    suite = parse_suite(source, known_tasks=needbench.envs.TASK_IDS, known_agents=list(AGENTS),
+                        allow_import=allow_import)
+    return check_suite(suite, allow_import=allow_import)
 
 
 # ----------------------------------------------------------------------------
