@@ -109,34 +109,32 @@ def measure(store: Any) -> Effect:
 
 
 def figure(store: Any, axes: Any) -> None:
+    """The stored episode of the first seed, on and off: each need's level and set point as
+    offsets from the preset set point."""
     effect = measure(store)
-    for trace_run in store.runs(suite=suite_name(SUITE), status="done", agent=AGENT):
-        if trace_run["seed"] != min(run["seed"] for run in store.runs(
-                suite=suite_name(SUITE), status="done", agent=AGENT)):
-            continue
-        condition = _condition(trace_run)
-        trace = store.trace(trace_run["hash"], 0)
-        band = trace["band"]
+    done = store.runs(suite=suite_name(SUITE), status="done", agent=AGENT)
+    first = min(run["seed"] for run in done)
+    needs = _need_names(store)
+    colours = ("#f0a030", "#1b5e9f", "#1a9e8f", "#c8553d")
+    for run in (run for run in done if run["seed"] == first):
+        condition = _condition(run)
+        trace = store.trace(run["hash"], 0)
+        band, start = trace["band"], trace["set_point"][0]
         steps = np.arange(trace["level"].shape[0])
-        colours = ("#f0a030", "#1b5e9f")
-        needs = _need_names(store)
-        for k in range(band.shape[0]):
-            name = needs[k] if k < len(needs) else f"need {k}"
+        for k, name in enumerate(needs):
+            colour = colours[k % len(colours)]
+            axes.plot(steps, (trace["level"][:, k] - start[k]) / band[k], color=colour,
+                      linewidth=0.6, alpha=0.6 if condition == ON else 0.9,
+                      linestyle="-" if condition == ON else ":", label=f"{name} level, "
+                      f"{condition}")
             if condition == ON:
-                axes.plot(steps, (trace["level"][:, k] - trace["set_point"][0, k]) / band[k],
-                          color=colours[k % 2], linewidth=0.6, alpha=0.55,
-                          label=f"{name} level, {ON}")
-                axes.plot(steps, (trace["set_point"][:, k] - trace["set_point"][0, k]) / band[k],
-                          color=colours[k % 2], linewidth=2.2, label=f"{name} set point, {ON}")
-            else:
-                axes.plot(steps, (trace["level"][:, k] - trace["set_point"][0, k]) / band[k],
-                          color=colours[k % 2], linewidth=0.6, linestyle=":", alpha=0.8,
-                          label=f"{name} level, {OFF}")
+                axes.plot(steps, (trace["set_point"][:, k] - start[k]) / band[k], color=colour,
+                          linewidth=2.2, label=f"{name} set point, {ON}")
     axes.axhline(0.0, color="#2f6b3b", linestyle="--", linewidth=1, label="preset set point")
-    axes.set_xlabel("step (a year is 400 steps)")
+    axes.set_xlabel(f"step of seed {first}'s first evaluation episode (a year is 400 steps)")
     axes.set_ylabel("offset from the preset set point (band units)")
     away = effect.detail["preset_deviation_difference"]
     axes.set_title(f"{TITLE}: discounted deviation on - off {effect.interval_text}; "
-                   f"from the preset {away[0]:+.3g} [{away[1]:+.3g}, {away[2]:+.3g}]",
+                   f"|offset from the preset| {away[0]:+.3g} [{away[1]:+.3g}, {away[2]:+.3g}]",
                    fontsize=10)
     axes.legend(loc="lower left", fontsize=7, ncol=3)
