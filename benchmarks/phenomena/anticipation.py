@@ -31,6 +31,9 @@ metric of :func:`needbench.benchmarks.metrics.anticipation` with the baseline
 given as its number); the mean over seeds with its 95 % bootstrap interval,
 expected < 1. The control: the learner deaf to the horn (horn and clock in one
 bin), whose ratio must not lie below 1 (its interval includes 1 or lies above).
+Any other agent added to the suite (e.g. ``ppo``, which sees every feature) is
+measured the same way into ``detail["other_agents"]`` and drawn in the figure,
+without entering ``met``.
 """
 
 from __future__ import annotations
@@ -74,9 +77,12 @@ def ratios(store: Any) -> tuple[dict[str, dict[int, float]], dict[int, float]]:
     reference = baseline[BASELINE]
     learner = runs.scores(store, suite, METRIC, _condition, agent=LEARNER)
     runs.require(learner, (HEARING, DEAF), SWEEP)
+    # Any other agent of the suite (e.g. ppo, which sees every feature), by its name.
+    others = runs.scores(store, suite, METRIC, lambda run: None if run["agent"] in
+                         (BASELINE, LEARNER) else run["agent"])
     return ({condition: {seed: value / reference[seed]
                          for seed, value in by_seed.items() if seed in reference}
-             for condition, by_seed in learner.items()}, reference)
+             for condition, by_seed in {**learner, **others}.items()}, reference)
 
 
 def oilskin_shares(store: Any) -> dict[str, dict[str, float]]:
@@ -112,12 +118,17 @@ def measure(store: Any) -> Effect:
     by_condition, reference = ratios(store)
     hearing = runs.mean_interval(np.array(list(by_condition[HEARING].values())))
     deaf = runs.mean_interval(np.array(list(by_condition[DEAF].values())))
+    others = {}
+    for agent in sorted(set(by_condition) - {HEARING, DEAF}):
+        if len(by_condition[agent]) >= 2:
+            other = runs.mean_interval(np.array(list(by_condition[agent].values())))
+            others[agent] = [other.value, other.low, other.high]
     return Effect(
         NAME, TASK,
         f"anticipation of {LEARNER} hearing the horn against {BASELINE}: deviation in "
         "squalls over the controller's, mean over seeds",
         hearing.value, hearing.low, hearing.high, "<", 1.0,
-        detail={"deaf": [deaf.value, deaf.low, deaf.high],
+        detail={"deaf": [deaf.value, deaf.low, deaf.high], "other_agents": others,
                 "per_seed": runs.per_condition(by_condition),
                 "baseline_disturbance_deviation": {str(s): v for s, v in
                                                    sorted(reference.items())},
@@ -130,19 +141,22 @@ def measure(store: Any) -> Effect:
 def figure(store: Any, axes: Any) -> None:
     effect = measure(store)
     by_condition, _ = ratios(store)
-    for i, (condition, colour) in enumerate(((HEARING, "#1b5e9f"), (DEAF, "#c8553d"))):
+    shown = [(HEARING, f"{LEARNER}, {LABELS[HEARING]}"), (DEAF, f"{LEARNER}, {LABELS[DEAF]}")]
+    shown += [(agent, f"{agent} (sees every feature)") for agent in effect.detail["other_agents"]]
+    colours = ("#1b5e9f", "#c8553d", "#1a9e8f", "#6b4a94")
+    for i, (condition, label) in enumerate(shown):
+        colour = colours[i % len(colours)]
         values = np.array(list(by_condition[condition].values()))
         interval = runs.mean_interval(values)
         axes.plot(np.full(values.size, i) + np.linspace(-0.12, 0.12, values.size), values,
-                  "o", color=colour, alpha=0.45, label=f"{LABELS[condition]}: one seed")
+                  "o", color=colour, alpha=0.45, label=f"{label}: one seed")
         axes.errorbar([i + 0.3], [interval.value], yerr=[[interval.value - interval.low],
                                                          [interval.high - interval.value]],
-                      color=colour, marker="s", capsize=5,
-                      label=f"{LABELS[condition]}: mean, 95 % CI")
+                      color=colour, marker="s", capsize=5, label=f"{label}: mean, 95 % CI")
     axes.axhline(1.0, color="#4d4d4d", linestyle="--", linewidth=1,
                  label=f"{BASELINE} (reactive reference)")
-    axes.set_xticks([0, 1], [f"{LEARNER}, {LABELS[HEARING]}", f"{LEARNER}, {LABELS[DEAF]}"])
-    axes.set_xlim(-0.5, 1.6)
+    axes.set_xticks(range(len(shown)), [label for _, label in shown])
+    axes.set_xlim(-0.5, len(shown) - 0.4)
     axes.set_ylabel(f"anticipation vs {BASELINE} (ratio, below 1 = ahead of it)")
     deaf = effect.detail["deaf"]
     axes.set_title(f"{TITLE} (Forewarn): hearing the horn {effect.interval_text}, deaf to it "
