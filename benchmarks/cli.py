@@ -3,7 +3,9 @@ compare, reference, drive.
 
 Exit codes: 0 success; 1 some jobs of a run failed (their tracebacks are in
 the store); 2 bad input (unknown task, agent or suite, an invalid suite file,
-a bad option), printed as one message without a traceback; 130 interrupted.
+a bad option), printed as one message without a traceback; 3 ``run phenomena``
+ran every job but some phenomenon's effect was not met (or could not be
+measured); 130 interrupted.
 """
 
 from __future__ import annotations
@@ -38,6 +40,13 @@ CSV_NAME = "runs.csv"
 TENSORBOARD_NAME = "tensorboard"
 #: Folder of the trained agents a run keeps (``run --save-agents``).
 AGENTS_NAME = "agents"
+
+#: ``needbench run phenomena``: every phenomena suite, into ``<out>/<name>``
+#: (default ``results/phenomena/<name>``).
+PHENOMENA = "phenomena"
+#: Exit code of ``run phenomena`` when every job ran but some effect was not met
+#: (or could not be measured).
+EXIT_NOT_MET = 3
 
 #: Seconds between progress lines when stdout is not a terminal (a log, nohup).
 PROGRESS_LINE_SECONDS = 10.0
@@ -315,25 +324,32 @@ def command_describe(args: argparse.Namespace) -> int:
 
 
 def command_run(args: argparse.Namespace) -> int:
-    from needbench.benchmarks.lock import ResultsLock
-    from needbench.benchmarks.runner import (
-        RunSettings,
-        check_run_options,
-        git_revision,
-        run_suite,
-    )
-    from needbench.benchmarks.store import Store
-    from needbench.benchmarks.tensorboard import NO_WRITER_MESSAGE, writer_backend
+    from needbench.benchmarks.runner import check_run_options
 
+    if args.suite == PHENOMENA and not Path(args.suite).is_file():
+        return command_run_phenomena(args)
     allow_import = allow_imports(args)
     suite = load_suite(args.suite, allow_import)
     # Every option is checked before the output folder is made.
     check_run_options(args.workers, args.backend, args.address, args.max_retries,
                       args.job_timeout)
     out = Path(args.out) if args.out is not None else Path("results") / suite.name
+    tensorboard = Path(args.tensorboard) if args.tensorboard else None
+    return _run_into(suite, out, tensorboard, args)
+
+
+def _run_into(suite, out: Path, tensorboard: Path | None, args: argparse.Namespace,
+              table: bool = True) -> int:
+    """Run a loaded suite into ``out`` (made here); 1 if some of its jobs failed, else 0."""
+    from needbench.benchmarks.lock import ResultsLock
+    from needbench.benchmarks.runner import RunSettings, git_revision, run_suite
+    from needbench.benchmarks.store import Store
+    from needbench.benchmarks.tensorboard import NO_WRITER_MESSAGE, writer_backend
+
     _make_folder("--out", out)
-    tensorboard = Path(args.tensorboard) if args.tensorboard else out / TENSORBOARD_NAME
-    if args.tensorboard:
+    given_tensorboard = tensorboard is not None
+    tensorboard = tensorboard if given_tensorboard else out / TENSORBOARD_NAME
+    if given_tensorboard:
         _make_folder("--tensorboard", tensorboard)
     if writer_backend() is None:
         print(f"needbench: {NO_WRITER_MESSAGE}", file=sys.stderr)
@@ -350,7 +366,7 @@ def command_run(args: argparse.Namespace) -> int:
                             max_retries=args.max_retries, progress=not args.quiet,
                             progress_every=None if sys.stdout.isatty()
                             else PROGRESS_LINE_SECONDS, job_timeout=args.job_timeout,
-                            retry_failed=args.retry_failed, allow_import=allow_import)
+                            retry_failed=args.retry_failed, allow_import=allow_imports(args))
         hashes = [job.hash for job in summary.jobs]
         failed = [run for run in store.runs(suite=suite.name, status="failed")
                   if run["hash"] in set(hashes)]
@@ -367,20 +383,57 @@ def command_run(args: argparse.Namespace) -> int:
                 print(f"{len(summary.left)} jobs never run were left out (--retry-failed "
                       "reruns only failed jobs; a rerun without it runs them)")
             _print_not_applicable(summary, args.verbose)
-        print(format_table(result_cells(store, hashes), table_width(args.wide)))
+        if table:
+            print(format_table(result_cells(store, hashes), table_width(args.wide)))
     for run in failed:
         last = (run["error"] or "").strip().splitlines()[-1:] or [""]
         print(f"failed: {run['task_id']} {run['agent']} seed={run['seed']}: {last[0]}",
               file=sys.stderr)
     if not args.quiet:
+        tabled = "the table above as CSV" if table else "the results table"
         print(f"results store: {out / STORE_NAME}; one row per run: {out / CSV_NAME}; "
-              f"the table above as CSV: needbench results {out} --csv")
+              f"{tabled}: needbench results {out}{' --csv' if table else ''}")
         if tensorboard is not None:
             print(f"tensorboard: tensorboard --logdir {tensorboard}")
         if agents is not None:
             print(f"trained agents: {agents}/ (one file per run, path in the agent_file column "
                   f"of {CSV_NAME}); replay one with needbench watch TASK --agent-file FILE")
     return 1 if failed else 0
+
+
+def command_run_phenomena(args: argparse.Namespace) -> int:
+    """Every phenomena suite, each into ``<out>/<name>``, then the table of their effects."""
+    from needbench.benchmarks import phenomena
+    from needbench.benchmarks.runner import check_run_options
+    from needbench.benchmarks.store import Store
+
+    modules = phenomena.phenomena()
+    suites = {name: load_suite(module.SUITE) for name, module in modules.items()}
+    check_run_options(args.workers, args.backend, args.address, args.max_retries,
+                      args.job_timeout)
+    base = Path(args.out) if args.out is not None else Path("results") / PHENOMENA
+    _make_folder("--out", base)
+    started = time.perf_counter()
+    failed = False
+    measured: list[phenomena.Measurement] = []
+    for name, module in modules.items():
+        out = base / name
+        if not args.quiet:
+            print(f"phenomenon {name}: suite {module.SUITE} into {out}")
+        tensorboard = Path(args.tensorboard) / name if args.tensorboard else None
+        code = _run_into(suites[name], out, tensorboard, args, table=False)
+        failed |= code != 0
+        with Store(out / STORE_NAME) as store:
+            measured.append(phenomena.measure(module, store))
+    print(phenomena.format_effects(measured))
+    (base / phenomena.EFFECTS_FILE).write_text(phenomena.effects_json(measured) + "\n",
+                                               encoding="utf-8")
+    met = sum(1 for m in measured if m.met)
+    print(f"{met} of {len(measured)} effects met ({time.perf_counter() - started:.0f} s); "
+          f"effects: {base / phenomena.EFFECTS_FILE}; report: needbench report {base}")
+    if failed:
+        return 1
+    return 0 if met == len(measured) else EXIT_NOT_MET
 
 
 def _print_not_applicable(summary, verbose: bool) -> None:
@@ -630,12 +683,23 @@ def _require_plots() -> None:
 
 def command_report(args: argparse.Namespace) -> int:
     _require_plots()
-    from needbench.benchmarks.report import build_report
+    from needbench.benchmarks.report import (
+        build_phenomena_report,
+        build_report,
+        phenomena_folders,
+    )
 
     out = Path(args.out) if args.out else _run_folder(args.location) / f"report.{args.format}"
-    with _open_store(args.location) as store:
-        report = build_report(store, out, format=args.format, suite=args.suite,
-                              allow_import=allow_imports(args))
+    location = Path(args.location)
+    if location.is_dir() and not (location / STORE_NAME).is_file() \
+            and phenomena_folders(location, STORE_NAME):
+        # A `run phenomena` folder: one store per phenomenon in its sub-folders.
+        report = build_phenomena_report(location, out, format=args.format,
+                                        store_name=STORE_NAME)
+    else:
+        with _open_store(args.location) as store:
+            report = build_report(store, out, format=args.format, suite=args.suite,
+                                      allow_import=allow_imports(args))
     folder = report.figures[0].path.parent if report.figures else None
     print(f"report: {report.path} ({len(report.sections) - 1} sections after the run facts, "
           f"{len(report.figures)} figures)")
@@ -811,7 +875,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="needbench",
         description="Benchmark agents that keep several internal needs near their set points.",
-        epilog="Exit codes: 0 ok, 1 some jobs failed, 2 bad input, 130 interrupted.",
+        epilog="Exit codes: 0 ok, 1 some jobs failed, 2 bad input, 3 some phenomenon's "
+        "effect not met (run phenomena), 130 interrupted.",
     )
     parser.add_argument("--version", action="version", version=f"needbench {package_version()}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -838,9 +903,13 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("suite", metavar="SUITE|FILE",
                      help="a built-in suite name (see `needbench list`) or a suite TOML file; "
                      "its agents are registry names (built-in or installed plug-ins), its "
-                     "tasks needbench ids, unless --allow-import")
+                     "tasks needbench ids, unless --allow-import; "
+                     f"`{PHENOMENA}`: every phenomena suite, each into <out>/<name>, then the "
+                     f"table of their effects (exit {EXIT_NOT_MET} if one is not met)")
     run.add_argument("--out", metavar="DIR", help="output folder (default: results/<suite name>)"
-                     f"; holds {STORE_NAME}, {CSV_NAME} and {TENSORBOARD_NAME}/")
+                     f"; holds {STORE_NAME}, {CSV_NAME} and {TENSORBOARD_NAME}/ (for "
+                     f"`{PHENOMENA}`: the parent of one such folder per phenomenon, default "
+                     f"results/{PHENOMENA})")
     run.add_argument("--workers", metavar="N", type=_positive, default=None,
                      help="worker processes, or CPUs of a new local Ray instance "
                      "(default: the number of CPUs)")

@@ -468,6 +468,97 @@ def _drive_description(drive) -> str:
 
 
 # ----------------------------------------------------------------------------
+# Phenomena
+# ----------------------------------------------------------------------------
+
+#: The section of the phenomena measured in a report, and its table's columns.
+PHENOMENA_TITLE = "Phenomena"
+PHENOMENA_COLUMNS = ["task", "measured effect [95 % interval]", "expected", "met"]
+
+
+def phenomenon_figure(module, store, folder: Path) -> FigureFile | None:
+    """A phenomenon's own figure (its module's ``figure(store, axes)``) as a PNG."""
+    from needbench.benchmarks import figures
+
+    if not hasattr(module, "figure"):
+        return None
+    figure, axes = figures.new_figure()
+    module.figure(store, axes[0, 0])
+    path = folder / f"phenomenon-{_safe(module.NAME)}.png"
+    return FigureFile(module.TITLE, f"{module.TITLE} on {module.TASK.removeprefix('needbench/')}"
+                      f" (suite {module.SUITE}); the effect and its 95 % interval are in the "
+                      "title and in the table above.", path, figures.save_png(figure, path))
+
+
+def phenomena_rows(measured) -> list[tuple[str, list[str]]]:
+    return [(row[0], list(row[1:])) for row in (m.row() for m in measured)]
+
+
+def phenomena_of(store, folder: Path, suite: str | None = None):
+    """The report section of the phenomena whose suites ran in ``store`` (None if none):
+    (title, heading, [(columns, one row per phenomenon)], their figures)."""
+    from needbench.benchmarks import phenomena
+
+    modules = [module for module in phenomena.in_store(store)
+               if suite is None or phenomena.suite_name(module) == suite]
+    if not modules:
+        return None
+    measured = [phenomena.measure(module, store) for module in modules]
+    made = [phenomenon_figure(m.module, store, folder) for m in measured if m.effect is not None]
+    return (PHENOMENA_TITLE, PHENOMENA_TITLE, [(PHENOMENA_COLUMNS, phenomena_rows(measured))],
+            [figure for figure in made if figure is not None])
+
+
+def phenomena_folders(folder: Path, store_name: str) -> list[Path]:
+    """The sub-folders of a ``needbench run phenomena`` folder that hold a results store."""
+    return sorted(path.parent for path in folder.glob(f"*/{store_name}"))
+
+
+def build_phenomena_report(folder: str | Path, out: str | Path, *, format: str = "html",
+                           store_name: str = "results.sqlite3") -> Report:
+    """The report of a ``needbench run phenomena`` folder: one table line and one figure per
+    phenomenon, measured on the store in each sub-folder."""
+    from needbench.benchmarks import phenomena
+    from needbench.benchmarks.store import Store
+
+    check_choice("format", format, FORMATS)
+    folder, out = Path(folder), Path(out)
+    figure_folder = out.parent / f"{out.stem}-figures"
+    measured, made, facts = [], [], []
+    for sub in phenomena_folders(folder, store_name):
+        with Store(sub / store_name) as store:
+            for module in phenomena.in_store(store):
+                measurement = phenomena.measure(module, store)
+                measured.append(measurement)
+                runs = store.runs()
+                done = sum(run["status"] == "done" for run in runs)
+                facts.append((f"{module.NAME} ({sub.name}/)",
+                              f"{done} runs done, {len(runs) - done} failed; revision "
+                              + ", ".join(sorted({run["git_revision"] or "unknown"
+                                                  for run in runs}))))
+                if measurement.effect is not None:
+                    figure = phenomenon_figure(module, store, figure_folder)
+                    if figure is not None:
+                        made.append(figure)
+    if not measured:
+        raise ConfigError("results", str(folder), "a folder of `needbench run phenomena` "
+                          f"(sub-folders holding {store_name} with runs of a phenomena suite)")
+    facts += [("report made", datetime.now(tz=UTC).isoformat(timespec="seconds")),
+              ("packages of the report", ", ".join(f"{k} {v}" for k, v in _versions().items())),
+              ("effects met", f"{sum(m.met for m in measured)} of {len(measured)}")]
+    facts.insert(0, ("suite", "phenomena"))
+    sections = [(PHENOMENA_TITLE, PHENOMENA_TITLE,
+                 [(PHENOMENA_COLUMNS, phenomena_rows(measured))], made)]
+    if format == "html":
+        text = _html(facts, sections, None, [])
+    else:
+        text = _markdown(facts, sections, None, [], out.parent)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(text, encoding="utf-8")
+    return Report(out, made, ["Run", PHENOMENA_TITLE])
+
+
+# ----------------------------------------------------------------------------
 # The page
 # ----------------------------------------------------------------------------
 
@@ -572,6 +663,9 @@ def build_report(store, out: str | Path, *, format: str = "html",
         table = task_table(task)
         sections.append((task.name, task.task_id, [table],
                          task_figures(store, task, styles, folder)))
+    phenomena_section = phenomena_of(store, folder, suite)
+    if phenomena_section is not None:
+        sections.append(phenomena_section)
     landscape = next((figure for figure in (drive_landscape(task, folder) for task in tasks)
                       if figure is not None), None)
     all_figures = [figure for section in sections for figure in section[3]]
@@ -591,10 +685,14 @@ def build_report(store, out: str | Path, *, format: str = "html",
     return Report(out, all_figures, titles)
 
 
+def _first_column(columns: Sequence[str]) -> str:
+    return "phenomenon" if list(columns) == PHENOMENA_COLUMNS else "metric"
+
+
 def _html_table(columns: Sequence[str], rows: Sequence[tuple[str, Sequence[str]]],
                 css: str = "") -> str:
     e = html.escape
-    head = "".join(f"<th>{e(c)}</th>" for c in ["metric", *columns])
+    head = "".join(f"<th>{e(c)}</th>" for c in [_first_column(columns), *columns])
     body = "".join("<tr><td>" + e(title) + "</td>" + "".join(f"<td>{e(v)}</td>" for v in cells)
                    + "</tr>" for title, cells in rows)
     return f'<table{css}><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>'
@@ -618,9 +716,10 @@ def _html(facts, sections, landscape, legend) -> str:
              '<section id="run"><h2>Run</h2><table class="facts"><tbody>']
     parts += [f"<tr><td>{e(k)}</td><td>{e(v)}</td></tr>" for k, v in facts]
     parts.append("</tbody></table>")
-    parts.append("<p>Agents and their colours, the same in every figure: " + ", ".join(
-        f'<span class="swatch" style="background:{colour}"></span>{e(agent)} ({e(name)})'
-        for agent, colour, name in legend) + ".</p>")
+    if legend:
+        parts.append("<p>Agents and their colours, the same in every figure: " + ", ".join(
+            f'<span class="swatch" style="background:{colour}"></span>{e(agent)} ({e(name)})'
+            for agent, colour, name in legend) + ".</p>")
     parts.append(f'<p class="note">{e(INTERVAL_NOTE)}</p>')
     parts.append("<nav><b>Tasks:</b> " + " · ".join(
         f'<a href="#task-{_safe(name)}">{e(name)}</a>' for name, *_ in sections)
@@ -646,9 +745,12 @@ def _markdown(facts, sections, landscape, legend, base: Path) -> str:
     lines = [f"# needbench report: {_md_escape(dict(facts)['suite'])}", "", "## Run", "",
              "| | |", "| --- | --- |"]
     lines += [f"| {_md_escape(k)} | {_md_escape(v)} |" for k, v in facts]
-    lines += ["", "Agents and their colours: " + ", ".join(
-        f"{_md_escape(agent)} ({name}, {colour})" for agent, colour, name in legend) + ".",
-        "", INTERVAL_NOTE, ""]
+    lines.append("")
+    if legend:
+        lines += ["Agents and their colours: " + ", ".join(
+            f"{_md_escape(agent)} ({name}, {colour})" for agent, colour, name in legend) + ".",
+            ""]
+    lines += [INTERVAL_NOTE, ""]
 
     def image(figure: FigureFile) -> list[str]:
         relative = figure.path.relative_to(base).as_posix()
@@ -658,7 +760,8 @@ def _markdown(facts, sections, landscape, legend, base: Path) -> str:
     for _name, task_id, tables, figures in sections:
         lines += [f"## {_md_escape(task_id)}", ""]
         for columns, rows in tables:
-            lines.append("| metric | " + " | ".join(_md_escape(c) for c in columns) + " |")
+            lines.append(f"| {_first_column(columns)} | "
+                         + " | ".join(_md_escape(c) for c in columns) + " |")
             lines.append("| --- |" + " ---: |" * len(columns))
             lines += ["| " + _md_escape(title) + " | " + " | ".join(_md_escape(v) for v in cells)
                       + " |" for title, cells in rows]

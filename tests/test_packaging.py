@@ -26,6 +26,8 @@ def test_wheel_maps_the_three_folders_into_the_namespace(wheel):
                      "needbench/agents/deep/vec_env.py",
                      "needbench/benchmarks/cli.py", "needbench/benchmarks/suites/quickstart.toml",
                      "needbench/benchmarks/suites/phenomena/overconsumption.toml",
+                     "needbench/benchmarks/phenomena/__init__.py",
+                     "needbench/benchmarks/phenomena/tradeoff.py",
                      "needbench/benchmarks/perf/__main__.py"):
         assert expected in names
     assert not any(name.startswith(("envs/", "agents/", "benchmarks/", "tests/"))

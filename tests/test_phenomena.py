@@ -1,6 +1,7 @@
-"""The built-in phenomena suites (benchmarks/suites/phenomena/): each is run at its
-own small budget and the direction of its effect is checked with a 95 % stratified
-bootstrap interval over seeds (needbench.benchmarks.stats) that excludes zero.
+"""The phenomena (needbench.benchmarks.phenomena) and their suites
+(benchmarks/suites/phenomena/): each suite is run at its own small budget, its
+module's ``measure`` reads the effect off the store, and the check asserts
+``effect.met`` (the whole 95 % bootstrap interval on the expected side).
 
 ``python -m pytest tests/test_phenomena.py -s`` prints the measured effects
 quoted in the README.
@@ -8,86 +9,260 @@ quoted in the README.
 
 from __future__ import annotations
 
-from collections import defaultdict
+import json
+import types
 
 import numpy as np
 import pytest
 from scipy import stats as scipy_stats
 
-from needbench.benchmarks import stats
-from needbench.benchmarks.cli import builtin_suites, main
+from needbench.benchmarks import phenomena
+from needbench.benchmarks.cli import EXIT_NOT_MET, builtin_suites, main
+from needbench.benchmarks.phenomena import Effect
+from needbench.benchmarks.phenomena import _runs as runs
 from needbench.benchmarks.store import Store
 
+#: The phenomena this file checks; valuation and risk come with their own branch.
+CHECKED = {"phenomena/overconsumption", "phenomena/tradeoff", "phenomena/anticipation",
+           "phenomena/allostasis"}
+ELSEWHERE = {"phenomena/valuation", "phenomena/risk"}
 
-def run_suite(name: str, folder) -> dict[float, dict[int, dict[str, float]]]:
-    """Run a built-in suite with one sweep into ``folder``; {sweep value: {seed:
-    {metric: mean over the run's evaluation episodes}}}."""
-    assert main(["run", name, "--out", str(folder), "--workers", "2", "--quiet"]) == 0
-    episodes: dict[float, dict[int, list]] = defaultdict(lambda: defaultdict(list))
+
+def run_and_measure(name: str, folder) -> Effect:
+    """Run a phenomenon's suite into ``folder`` through the CLI and measure it."""
+    module = phenomena.phenomenon(name)
+    assert main(["run", module.SUITE, "--out", str(folder), "--workers", "2", "--quiet"]) == 0
     with Store(folder / "results.sqlite3") as store:
         assert all(run["status"] == "done" for run in store.runs())
-        for episode in store.episodes():
-            (value,) = episode["sweep"].values()
-            episodes[value][episode["seed"]].append(episode["metrics"])
-    return {value: {seed: {key: float(np.mean([m[key] for m in metrics]))
-                           for key in metrics[0]}
-                    for seed, metrics in by_seed.items()}
-            for value, by_seed in episodes.items()}
+        effect = module.measure(store)
+    print(f"{name}: {effect.interval_text} {effect.expectation} ({effect.quantity})"
+          + (f"; control: {effect.control}" if effect.control else "")
+          + f"; met: {effect.met}")
+    print(f"  detail: {json.dumps({k: v for k, v in effect.detail.items() if k != 'per_seed'})}")
+    return effect
 
 
-def paired_difference(runs, metric: str, high: float, low: float) -> stats.Estimate:
-    """Mean over seeds of metric(high) - metric(low), paired by seed, with its interval."""
-    seeds = sorted(runs[low])
-    difference = np.array([runs[high][s][metric] - runs[low][s][metric] for s in seeds])
-    return stats.bootstrap_ci(difference, stats.mean, np.random.default_rng(0))
-
-
-def rank_correlation(runs, metric: str):
-    values = [value for value in runs for _ in runs[value]]
-    scores = [runs[value][seed][metric] for value in runs for seed in runs[value]]
-    # Source: scipy.stats.spearmanr, Spearman's rank correlation with its p-value.
-    return scipy_stats.spearmanr(values, scores)
-
-
-def report(name: str, estimate: stats.Estimate) -> None:
-    print(f"{name}: {estimate.value:+.3f} [{estimate.low:+.3f}, {estimate.high:+.3f}]")
-
+# ----------------------------------------------------------------------------
+# The framework
+# ----------------------------------------------------------------------------
 
 def test_every_phenomena_suite_has_a_check():
-    checked = {"phenomena/overconsumption", "phenomena/tradeoff"}
-    assert {name for name in builtin_suites() if name.startswith("phenomena/")} == checked
+    present = {name for name in builtin_suites() if name.startswith("phenomena/")}
+    assert CHECKED <= present, "every phenomenon of this branch has its suite"
+    assert present <= CHECKED | ELSEWHERE, "a phenomena suite with no check here or elsewhere"
+    # One module per suite, found by the package's own discovery.
+    assert {module.SUITE for module in phenomena.phenomena().values()} == present
 
+
+def test_modules_keep_the_contract():
+    found = phenomena.phenomena()
+    assert {"overconsumption", "tradeoff", "anticipation", "allostasis"} <= set(found)
+    for name, module in found.items():
+        assert module.NAME == name and module.SUITE == f"phenomena/{name}"
+        assert module.TASK.startswith("needbench/") and module.TITLE
+        assert callable(module.measure) and callable(module.figure)
+        assert phenomena.suite_name(module).startswith("phenomena-")
+
+
+def test_an_effect_is_met_only_with_its_whole_interval_and_its_control():
+    assert Effect("x", "t", "q", 0.5, 0.1, 0.9, ">").met
+    assert not Effect("x", "t", "q", 0.5, -0.1, 0.9, ">").met
+    assert Effect("x", "t", "q", 0.5, 0.3, 0.9, "<", 1.0).met
+    assert not Effect("x", "t", "q", 0.5, 0.3, 1.1, "<", 1.0).met
+    assert not Effect("x", "t", "q", 0.5, 0.3, 0.9, "<", 1.0, control="c", control_met=False).met
+
+
+def test_spearman_over_bootstrap_rows_agrees_with_scipy():
+    rng = np.random.default_rng(3)
+    x = np.repeat([0.0, 0.1, 0.3, 1.0, 3.0], 4)
+    y = rng.normal(size=(6, x.size)) - x
+    y[2, :5] = y[2, 0]  # ties in the scores too
+    y[5] = 1.0  # a row with no order
+    rho = runs.spearman_rows(x, y)
+    for row in range(5):
+        # Source: scipy.stats.spearmanr, Spearman's rank correlation with average ranks for ties.
+        assert rho[row] == pytest.approx(scipy_stats.spearmanr(x, y[row]).statistic, abs=1e-12)
+    assert rho[5] == 0.0
+
+
+def test_the_mean_interval_agrees_with_scipy_bootstrap():
+    values = np.array([0.52, 0.61, 0.44, 0.83, 0.58, 0.71, 0.49, 0.66])
+    ours = runs.mean_interval(values)
+    # Source: scipy.stats.bootstrap, percentile method (Monte Carlo: a few hundredths apart).
+    theirs = scipy_stats.bootstrap((values,), np.mean, method="percentile",
+                                   confidence_level=0.95, n_resamples=20000,
+                                   random_state=np.random.default_rng(0)).confidence_interval
+    assert ours.value == pytest.approx(values.mean())
+    assert ours.low == pytest.approx(theirs.low, abs=0.02)
+    assert ours.high == pytest.approx(theirs.high, abs=0.02)
+
+
+# ----------------------------------------------------------------------------
+# `needbench run phenomena` and the report, on two small made-up phenomena
+# ----------------------------------------------------------------------------
+
+SMALL_SUITE = """
+[suite]
+name = "phenomena-{name}"
+seeds = [0, 1, 2]
+eval_episodes = 1
+
+[[task]]
+id = "needbench/Menu-v0"
+[task.kwargs]
+max_steps = 20
+
+[[agent]]
+name = "setpoint-controller"
+total_steps = 0
+"""
+
+
+def small_phenomenon(folder, name: str, threshold: float):
+    """A phenomenon whose effect is the controller's time in band on a short Menu,
+    expected above ``threshold`` (it is 1 there: met below 1, not met at 1)."""
+    suite = folder / f"{name}.toml"
+    suite.write_text(SMALL_SUITE.format(name=name))
+
+    def measure(store):
+        grouped = runs.scores(store, f"phenomena-{name}", "time_in_band", lambda run: "all")
+        estimate = runs.mean_interval(np.array(list(grouped["all"].values())))
+        return Effect(name, "needbench/Menu-v0", "time in band", estimate.value, estimate.low,
+                      estimate.high, ">", threshold)
+
+    def figure(store, axes):
+        axes.plot([0, 1], [0, 1], label="made up")
+        axes.set_title(name)
+
+    return types.SimpleNamespace(NAME=name, TITLE=f"Made-up {name}", TASK="needbench/Menu-v0",
+                                 SUITE=str(suite), measure=measure, figure=figure)
+
+
+@pytest.fixture
+def two_phenomena(tmp_path, monkeypatch):
+    made = {"steady": small_phenomenon(tmp_path, "steady", 0.5),
+            "strict": small_phenomenon(tmp_path, "strict", 0.5)}
+    monkeypatch.setattr(phenomena, "phenomena", lambda: made)
+    return made
+
+
+def test_run_phenomena_runs_each_suite_into_its_folder_and_prints_the_table(
+        tmp_path, two_phenomena, capsys):
+    out = tmp_path / "phen"
+    assert main(["run", "phenomena", "--out", str(out), "--workers", "2"]) == 0
+    text = capsys.readouterr().out
+    for name in two_phenomena:
+        assert (out / name / "results.sqlite3").is_file()
+    table = text[text.index("phenomenon  "):]
+    assert "Made-up steady  Menu-v0" in table and "> 0.5" in table and table.count(" yes") == 2
+    effects = json.loads((out / "effects.json").read_text())
+    assert [e["phenomenon"] for e in effects] == ["steady", "strict"]
+    assert all(e["met"] and e["effect"]["value"] == 1.0 for e in effects)
+    # Resumable like any run: a second run skips every job.
+    assert main(["run", "phenomena", "--out", str(out), "--workers", "2"]) == 0
+    assert capsys.readouterr().out.count("3 jobs already done") == 2
+    # The report of the folder: each phenomenon's line of the table and its figure.
+    assert main(["report", str(out), "--format", "md"]) == 0
+    page = (out / "report.md").read_text()
+    assert "| phenomenon | task | measured effect [95 % interval] | expected | met |" in page
+    assert "| Made-up steady | Menu-v0 | +1 [+1, +1] (time in band) | &gt; 0.5 | yes |" in page
+    assert (out / "report-figures" / "phenomenon-strict.png").is_file()
+    # The report of one phenomenon's run has its line and figure too.
+    assert main(["report", str(out / "steady")]) == 0
+    html = (out / "steady" / "report.html").read_text()
+    assert "Made-up steady" in html and "phenomenon-steady.png" in html
+
+
+def test_run_phenomena_exits_3_when_an_effect_is_not_met(tmp_path, two_phenomena, capsys):
+    two_phenomena["strict"] = small_phenomenon(tmp_path, "strict", 1.0)
+    out = tmp_path / "phen"
+    assert main(["run", "phenomena", "--out", str(out), "--workers", "2", "--quiet"]) \
+        == EXIT_NOT_MET == 3
+    table = capsys.readouterr().out
+    assert "> 1" in table and table.rstrip().splitlines()[-2].endswith("no")
+
+
+def test_run_phenomena_checks_every_suite_before_making_a_folder(tmp_path, two_phenomena,
+                                                                 capsys):
+    broken = tmp_path / "strict.toml"
+    broken.write_text(SMALL_SUITE.format(name="strict").replace("eval_episodes = 1",
+                                                                "eval_episode = 1"))
+    assert main(["run", "phenomena", "--out", str(tmp_path / "phen")]) == 2
+    assert "eval_episode" in capsys.readouterr().err
+    assert not (tmp_path / "phen").exists()
+
+
+# ----------------------------------------------------------------------------
+# Each phenomenon, run at its suite's budget
+# ----------------------------------------------------------------------------
 
 @pytest.mark.slow
 def test_overconsumption_grows_with_palatability(tmp_path):
-    runs = run_suite("phenomena/overconsumption", tmp_path / "out")
-    assert sorted(runs) == [0.0, 0.5, 1.0, 2.0]
+    effect = run_and_measure("overconsumption", tmp_path / "out")
     # Learned steady state above the set point with T > 0, against T = 0 (paired seeds).
-    for weight in (1.0, 2.0):
-        excess = paired_difference(runs, "overconsumption", weight, 0.0)
-        report(f"overconsumption, palatability weight {weight} - 0", excess)
-        assert excess.low > 0.0
-    correlation = rank_correlation(runs, "overconsumption")
-    print(f"Spearman(palatability weight, overconsumption) = {correlation.statistic:+.2f}, "
-          f"p = {correlation.pvalue:.1g}")
-    assert correlation.statistic > 0 and correlation.pvalue < 0.05
+    assert effect.met and effect.expected == ">" and effect.threshold == 0.0
+    assert effect.detail["difference_weight_1"][1] > 0.0
+    assert effect.detail["spearman"] > 0 and effect.detail["spearman_p"] < 0.05
     # With T = 0 the fudge is an honest food: the learner stays close to the set point.
-    honest = np.mean([m["overconsumption"] for m in runs[0.0].values()])
-    palatable = np.mean([m["overconsumption"] for m in runs[2.0].values()])
-    assert honest < palatable / 2
+    means = effect.detail["means"]
+    assert means["0.0"] < means["2.0"] / 2
 
 
 @pytest.mark.slow
 def test_time_in_band_falls_and_return_rises_with_the_task_weight(tmp_path):
-    runs = run_suite("phenomena/tradeoff", tmp_path / "out")
-    assert sorted(runs) == [0.0, 0.1, 0.3, 1.0, 3.0]
-    in_band = paired_difference(runs, "time_in_band", 3.0, 0.0)
-    gain = paired_difference(runs, "return", 3.0, 0.0)
-    report("time in band, task weight 3 - 0", in_band)
-    report("return, task weight 3 - 0", gain)
-    assert in_band.high < 0.0 and gain.low > 0.0
-    for metric, sign in (("time_in_band", -1), ("return", 1), ("extrinsic_return", 1)):
-        correlation = rank_correlation(runs, metric)
-        print(f"Spearman(task weight, {metric}) = {correlation.statistic:+.2f}, "
-              f"p = {correlation.pvalue:.1g}")
-        assert np.sign(correlation.statistic) == sign and correlation.pvalue < 0.05
+    effect = run_and_measure("tradeoff", tmp_path / "out")
+    assert effect.met and effect.value < 0 and effect.detail["spearman_p"] < 0.05
+    for metric in ("return", "extrinsic_return"):
+        rho, p = effect.detail[f"spearman/{metric}"]
+        assert rho > 0 and p < 0.05
+    assert effect.detail["difference/time_in_band"][2] < 0.0
+    assert effect.detail["difference/return"][1] > 0.0
+
+
+@pytest.mark.slow
+def test_hearing_the_horn_a_learner_deviates_less_in_squalls_than_the_controller(tmp_path):
+    effect = run_and_measure("anticipation", tmp_path / "out")
+    assert effect.met and effect.high < 1.0
+    deaf_value, deaf_low, deaf_high = effect.detail["deaf"]
+    assert effect.control_met and deaf_high >= 1.0
+    # The mechanism: hearing the horn, the learner has the oilskin on when more squalls
+    # begin than the controller (which waits for the cold) or the deaf learner.
+    worn = effect.detail["oilskin_worn"]
+    hearing = worn["tabular-q, hears the horn"]["onset"]
+    assert hearing > worn["setpoint-controller"]["onset"] + 0.2
+    assert hearing > worn["tabular-q, deaf to the horn"]["onset"] + 0.2
+
+
+def test_the_seasonal_gain_of_the_set_point_filter_is_as_the_allostasis_docstring_says():
+    from scipy import signal
+
+    a, year = 0.002, 400
+    # e_{t+1} = (1 - a)(e_t + h_{t+1} - h_t): E / H = (1 - a)(1 - z^-1) / (1 - (1 - a) z^-1).
+    # Source: scipy.signal.freqz, the frequency response of a digital filter.
+    _, response = signal.freqz([1 - a, -(1 - a)], [1, -(1 - a)], worN=[2 * np.pi / year])
+    assert abs(response[0]) == pytest.approx(0.991, abs=5e-4)
+    _, steady = signal.freqz([1 - a, -(1 - a)], [1, -(1 - a)], worN=[0.0])
+    assert abs(steady[0]) == pytest.approx(0.0, abs=1e-12)
+
+
+@pytest.mark.slow
+def test_adapting_set_points_shrink_the_deviation_a_little_and_let_the_body_drift(tmp_path):
+    from scipy import signal
+
+    effect = run_and_measure("allostasis", tmp_path / "out")
+    assert effect.met and effect.high < 0.0
+    # Only a little: the seasonal swing passes the set-point filter almost whole.
+    assert -0.1 < effect.detail["relative"] < 0.0
+    assert effect.detail["preset_deviation_difference"][1] > 0.0
+    with Store(tmp_path / "out" / "results.sqlite3") as store:
+        (run,) = [run for run in store.runs() if run["seed"] == 0 and run["sweep"]
+                  ["task.need_overrides"] == {}]
+        trace = store.trace(run["hash"], 0)
+    a = 0.002
+    level, set_point = trace["level"], trace["set_point"]
+    # The set points of the stored episode follow s_{t+1} = s_t + a (h_{t+1} - s_t).
+    # Source: scipy.signal.lfilter, the same first-order recurrence as a digital filter.
+    for k in range(level.shape[1]):
+        expected, _ = signal.lfilter([a], [1, -(1 - a)], level[1:, k],
+                                     zi=[(1 - a) * set_point[0, k]])
+        np.testing.assert_allclose(set_point[1:, k], expected, rtol=0, atol=1e-9)
