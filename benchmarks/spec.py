@@ -833,7 +833,9 @@ class _Checker:
         if world_class is None:
             return
         try:
-            split_arguments(world_class, getattr(env_class, "defaults", {}), kwargs)
+            # Declared tables (extra_needs, couplings) as the task receives them.
+            split_arguments(world_class, getattr(env_class, "defaults", {}),
+                            task_arguments(kwargs))
         except ConfigError as error:
             raise self.error(_join(path, error.path), error.value, error.allowed) from None
         except TypeError as error:  # a keyword of the wrong kind for the config dataclass

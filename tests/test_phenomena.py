@@ -24,7 +24,7 @@ from needbench.benchmarks.store import Store
 
 #: The phenomena this file checks; valuation and risk come with their own branch.
 CHECKED = {"phenomena/overconsumption", "phenomena/tradeoff", "phenomena/anticipation",
-           "phenomena/allostasis"}
+           "phenomena/allostasis", "phenomena/reserve"}
 ELSEWHERE = {"phenomena/valuation", "phenomena/risk"}
 
 
@@ -266,3 +266,47 @@ def test_adapting_set_points_shrink_the_deviation_a_little_and_let_the_body_drif
         expected, _ = signal.lfilter([a], [1, -(1 - a)], level[1:, k],
                                      zi=[(1 - a) * set_point[0, k]])
         np.testing.assert_allclose(set_point[1:, k], expected, rtol=0, atol=1e-9)
+
+
+def reserve_task(**kwargs):
+    """Lure with the reserve suite's store need and couplings, as the suite declares them."""
+    import gymnasium as gym
+
+    from needbench.benchmarks.spec import load_suite, task_arguments
+
+    (task,) = load_suite(builtin_suites()[phenomena.phenomenon("reserve").SUITE]).tasks
+    return gym.make(task.id, **{**task_arguments(task.kwargs), **kwargs})
+
+
+def test_the_store_is_the_low_pass_filter_of_the_energy_surplus_the_docstring_derives():
+    from scipy import signal
+
+    # Energy starts 2 bands above its set point, the store empty; resting, nothing is eaten.
+    env = reserve_task(need_overrides={"energy": {"initial_low": 2.0, "initial_high": 2.0}})
+    _, info = env.reset(seed=0)
+    energy, store = [info["level"][0]], [info["level"][2]]
+    for _ in range(60):
+        _, _, terminated, truncated, info = env.step(0)  # rest
+        energy.append(info["level"][0])
+        store.append(info["level"][2])
+        assert not (terminated or truncated)
+    env.close()
+    energy, store = np.array(energy), np.array(store)
+    a, b = 0.05, 0.005
+    # s_{t+1} = (1 - b) s_t + a max(e_t, 0): the store gains what energy above its set point
+    # loses. Source: scipy.signal.lfilter, the direct-form filter of that difference equation.
+    predicted = signal.lfilter([0.0, a], [1.0, -(1.0 - b)], np.maximum(energy, 0.0))
+    np.testing.assert_allclose(store, predicted, rtol=0, atol=1e-12)
+    assert store[-1] > 0.5 and energy[-1] < energy[0]
+    assert phenomena.phenomenon("reserve").STEADY_GAIN == pytest.approx(a / b)
+
+
+@pytest.mark.slow
+def test_persistent_overconsumption_fills_the_store(tmp_path):
+    effect = run_and_measure("reserve", tmp_path / "out")
+    assert effect.met and effect.expected == ">" and effect.threshold == 0.0
+    means = effect.detail["means"]
+    assert means["2.0"] > 3 * means["0.0"]
+    # Within one episode the store stays below the filter's steady state 10 x surplus.
+    for weight, bound in effect.detail["steady_content_bound"].items():
+        assert means[weight] < bound

@@ -539,3 +539,23 @@ def test_a_tasks_agent_settings_are_checked_like_the_agents_own(old, new, path, 
         _checked(text)
     assert caught.value.path == path, caught.value
     assert hint in str(caught.value)
+
+
+def test_declared_couplings_pass_the_load_check_and_become_coupling_objects():
+    from needbench.envs import Coupling
+
+    coupling = """
+[[task.kwargs.couplings]]
+source = "energy"
+target = "water"
+gain = 0.05
+side = "above"
+"""
+    (job,) = spec.expand(_checked(CHECKED + coupling))
+    assert job.task_arguments["couplings"] == (Coupling("energy", "water", 0.05, "above"),)
+    with pytest.raises(spec.SuiteError) as caught:
+        _checked(CHECKED + coupling.replace("gain", "gian"))
+    assert caught.value.path == "task[0].kwargs.couplings[0].gian"
+    with pytest.raises(spec.SuiteError) as caught:
+        _checked(CHECKED + coupling.replace('side = "above"', 'side = "over"'))
+    assert caught.value.path.startswith("task[0].kwargs") and "below" in str(caught.value)
