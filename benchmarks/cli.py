@@ -1021,10 +1021,11 @@ def build_parser() -> argparse.ArgumentParser:
         "(Agarwal et al. 2021). Prints a table and writes comparison.json and "
         "comparison.png. With --reference NAME or FILE.json (a reference file, e.g. the "
         "shipped 'core'), every agent of the store is put beside the reference's agents "
-        "on the tasks both hold: metrics, normalised scores (0 = random, 1 = the planner, "
-        "else the set-point controller), their IQM over tasks, and P(yours > shipped) with "
-        "the IQM difference; the evaluation protocol (task keywords, evaluation episodes, "
-        "discount, seeds) must be the reference's, else exit 2 names what differs.")
+        "on the tasks both hold: metrics, normalised scores (0 = random, 1 = the better of "
+        "the planner and the setpoint controller on that metric), their IQM over tasks, "
+        "and P(yours > shipped) with the IQM difference; the evaluation protocol (task "
+        "keywords, evaluation episodes, discount, seeds) must be the reference's, else "
+        "exit 2 names what differs.")
     _add_location(comparing)
     comparing.add_argument("--agents", nargs=2, metavar=("A", "B"), default=None,
                            help="the two agents, A compared against B (required without a "

@@ -22,9 +22,9 @@ jobs) and elapsed seconds (first start to last finish). The JSON header is
 indented; the runs are one line each, so a new file reads as a small diff.
 
 Normalised scores (:func:`normalised_scores`): per task, 0 is the random
-agent and 1 the best non-learning reference (the exact planner where the file
-has its runs on the task, else the set-point controller), on the discounted
-drive and on the return. Their aggregate over tasks per agent
+agent and 1 the best non-learning reference: on each metric, the better of
+the exact planner (where the file has its runs on the task) and the setpoint
+controller, on the discounted drive and on the return. Their aggregate over tasks per agent
 (:func:`aggregate_score`) is the IQM with a stratified bootstrap interval
 over tasks and runs (Agarwal et al. 2021; :mod:`needbench.benchmarks.stats`).
 """
@@ -498,8 +498,8 @@ class Baseline:
         floor: the mean, over the random agent's runs (seeds) on the task, of
             each run's mean over its evaluation episodes (metric units).
         ceiling: the same mean for the reference agent.
-        ceiling_agent: the reference agent (the planner where it has runs on
-            the task, else the set-point controller).
+        ceiling_agent: the reference agent (the better on this metric of the
+            planner, where it has runs on the task, and the setpoint controller).
     """
 
     task_id: str
