@@ -35,6 +35,26 @@ def done_runs(store: Any, suite: str) -> list[dict[str, Any]]:
     return runs
 
 
+def traced_runs(store: Any, suite: str, task: str, agent: str | None = None, *,
+                builtin: str = "phenomena") -> list[tuple[dict[str, Any], dict]]:
+    """(run, trace of its first evaluation episode) for each done run of ``suite`` on
+    ``task`` (of ``agent`` if given); ConfigError when there are none (naming the
+    built-in suite to run, ``builtin``) or a run has no stored trace."""
+    found = store.runs(suite=suite, task_id=task, agent=agent, status="done")
+    if not found:
+        who = f"{agent} runs" if agent else "runs"
+        raise ConfigError("store", str(store.path),
+                          f"done {who} of suite {suite!r} (run it: needbench run {builtin})")
+    pairs = []
+    for run in found:
+        try:
+            pairs.append((run, store.trace(run["hash"], 0)))
+        except KeyError as error:
+            raise ConfigError("run --traces", 0, "at least 1 stored trace per run "
+                              "(the default)") from error
+    return pairs
+
+
 def scores(store: Any, suite: str, metric: str,
            condition: Callable[[dict[str, Any]], Any], *,
            agent: str | None = None) -> Scores:

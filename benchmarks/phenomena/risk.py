@@ -58,6 +58,7 @@ import numpy as np
 from needbench.agents.planner import ExactPlannerAgent
 from needbench.benchmarks import stats
 from needbench.benchmarks.phenomena import Effect
+from needbench.benchmarks.phenomena import _runs as runs_of_suite
 from needbench.benchmarks.store import Store
 from needbench.envs.errors import ConfigError
 from needbench.envs.tasks.gamble import DEEP_NET, HANDLINE, REST
@@ -88,19 +89,8 @@ def _drive_of(run: dict[str, Any]) -> dict[str, Any]:
 
 
 def traced_runs(store: Store, agent: str) -> list[tuple[dict[str, Any], dict]]:
-    """(run, trace of its first evaluation episode) for each finished run of ``agent``."""
-    runs = store.runs(suite=SUITE_NAME, task_id=TASK, agent=agent, status="done")
-    if not runs:
-        raise ConfigError("store", str(store.path),
-                          f"finished {agent} runs of suite {SUITE!r} (needbench run {SUITE})")
-    pairs = []
-    for run in runs:
-        try:
-            pairs.append((run, store.trace(run["hash"], 0)))
-        except KeyError as error:
-            raise ConfigError("run --traces", 0, "at least 1 stored trace per run "
-                              "(the default)") from error
-    return pairs
+    """(run, trace of its first evaluation episode) for each done run of ``agent``."""
+    return runs_of_suite.traced_runs(store, SUITE_NAME, TASK, agent, builtin=SUITE)
 
 
 def deficits(trace: dict) -> np.ndarray:

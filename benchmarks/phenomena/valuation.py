@@ -35,6 +35,7 @@ import numpy as np
 
 from needbench.benchmarks import stats
 from needbench.benchmarks.phenomena import Effect
+from needbench.benchmarks.phenomena import _runs as runs_of_suite
 from needbench.benchmarks.store import Store
 from needbench.envs.errors import ConfigError
 from needbench.envs.tasks.menu import HUT_PANTRY, MenuWorld
@@ -62,20 +63,8 @@ _OTHER_INDEX = MenuWorld.default_needs.index(OTHER)
 
 
 def traced_runs(store: Store, agent: str | None = None) -> list[tuple[dict[str, Any], dict]]:
-    """(run, trace of its first evaluation episode) for each finished run of the suite."""
-    runs = [run for run in store.runs(suite=SUITE_NAME, task_id=TASK, agent=agent,
-                                      status="done")]
-    if not runs:
-        raise ConfigError("store", str(store.path),
-                          f"finished runs of suite {SUITE!r} (needbench run {SUITE})")
-    pairs = []
-    for run in runs:
-        try:
-            pairs.append((run, store.trace(run["hash"], 0)))
-        except KeyError as error:
-            raise ConfigError("run --traces", 0, "at least 1 stored trace per run "
-                              "(the default)") from error
-    return pairs
+    """(run, trace of its first evaluation episode) for each done run of ``agent``."""
+    return runs_of_suite.traced_runs(store, SUITE_NAME, TASK, agent, builtin=SUITE)
 
 
 def deviations(trace: dict) -> np.ndarray:
