@@ -471,8 +471,5 @@ def test_a_shipped_reference_covers_its_suite_exactly(name):
     ref.ranking(loaded)  # every task has its 0 and 1
 
 
-# The lead adds benchmarks/reference/core.json from the real core run; then this
-# test passes, and strict xfail turns that into a failure: remove the mark then.
-@pytest.mark.xfail(strict=True, reason="benchmarks/reference/core.json is not shipped yet")
 def test_the_core_reference_is_shipped():
     assert "core" in SHIPPED
