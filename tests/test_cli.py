@@ -128,15 +128,6 @@ def test_rerun_skips_what_is_done(local_run, capsys):
     assert after == before
 
 
-@pytest.fixture(scope="module")
-def ray_session():
-    """One local Ray instance with 2 CPUs for the Ray tests of this module."""
-    ray = pytest.importorskip("ray")
-    ray.init(num_cpus=2, include_dashboard=False)
-    yield ray
-    ray.shutdown()
-
-
 @pytest.mark.ray
 def test_ray_backend_stores_the_same_metrics(local_run, ray_session, tmp_path):
     out, _ = local_run

@@ -434,15 +434,6 @@ def test_the_python_api_takes_allow_import(user_folder, tmp_path):
         assert run_suite(suite, store, workers=1, allow_import=True).ok
 
 
-@pytest.fixture(scope="module")
-def ray_session():
-    """One local Ray instance with 2 CPUs, whose workers do not share the test's sys.path."""
-    ray = pytest.importorskip("ray")
-    ray.init(num_cpus=2, include_dashboard=False)
-    yield ray
-    ray.shutdown()
-
-
 #: Seconds a Ray job may run here: a healthy job of this suite takes well under a second
 #: once its worker has loaded needbench, and a few seconds on a busy machine before.
 TIMEOUT = 15.0
